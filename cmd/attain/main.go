@@ -1,0 +1,75 @@
+// Command attain estimates every learner's mastery of every skill from a
+// stream of answer events (Bayesian Knowledge Tracing on Kafka).
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"os"
+	"os/signal"
+	"sort"
+	"syscall"
+)
+
+// A command runs with its arguments (after the command name) and returns
+// an error to print; errUsage prints the usage and exits 2.
+type command struct {
+	summary string
+	run     func(ctx context.Context, args []string, stdout, stderr io.Writer) error
+}
+
+var errUsage = errors.New("usage")
+
+// commands lists the subcommands; each lives in a file of its own.
+var commands = map[string]command{}
+
+func main() {
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	code := run(ctx, os.Args[1:], os.Stdout, os.Stderr)
+	stop()
+	os.Exit(code)
+}
+
+func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+	if len(args) == 0 || args[0] == "-h" || args[0] == "--help" || args[0] == "help" {
+		usage(stderr)
+		if len(args) == 0 {
+			return 2
+		}
+		return 0
+	}
+	c, ok := commands[args[0]]
+	if !ok {
+		fmt.Fprintf(stderr, "attain: unknown command %q\n\n", args[0])
+		usage(stderr)
+		return 2
+	}
+	err := c.run(ctx, args[1:], stdout, stderr)
+	switch {
+	case err == nil:
+		return 0
+	case errors.Is(err, flag.ErrHelp):
+		return 0
+	case errors.Is(err, errUsage):
+		return 2
+	default:
+		fmt.Fprintf(stderr, "attain %s: %v\n", args[0], err)
+		return 1
+	}
+}
+
+func usage(w io.Writer) {
+	fmt.Fprintln(w, "usage: attain COMMAND [flags]\n\ncommands:")
+	names := make([]string, 0, len(commands))
+	for n := range commands {
+		names = append(names, n)
+	}
+	sort.Strings(names)
+	for _, n := range names {
+		fmt.Fprintf(w, "  %-10s %s\n", n, commands[n].summary)
+	}
+	fmt.Fprintln(w, "\nRun 'attain COMMAND -h' for a command's flags.")
+}

@@ -1,0 +1,139 @@
+package state
+
+import (
+	"encoding/json"
+	"errors"
+	"fmt"
+	"time"
+)
+
+// ErrBadAnswer is wrapped by every error that rejects an input event.
+var ErrBadAnswer = errors.New("attain: bad answer event")
+
+// Answer is one learner's answer to one practice item: the native input
+// event, version 1.
+type Answer struct {
+	ID      string    `json:"id"`
+	Learner string    `json:"learner"`
+	Item    string    `json:"item,omitempty"`
+	Skills  []string  `json:"skills"`
+	Correct bool      `json:"correct"`
+	At      time.Time `json:"at"`
+}
+
+// AnswerError says which field of an event was rejected and why.
+type AnswerError struct {
+	Field  string // "" when the event as a whole is malformed
+	Reason string
+}
+
+func (e *AnswerError) Error() string {
+	if e.Field == "" {
+		return "attain: bad answer event: " + e.Reason
+	}
+	return fmt.Sprintf("attain: bad answer event: field %q: %s", e.Field, e.Reason)
+}
+
+func (e *AnswerError) Unwrap() error { return ErrBadAnswer }
+
+// NativeVersion is the only version of the native event this build reads.
+const NativeVersion = 1
+
+// NativeDecoder decodes and validates native v1 JSON answer events. The
+// zero value is ready to use.
+type NativeDecoder struct {
+	// Items maps an item id to its skills (the Q-matrix), used when an event
+	// names an item but no skills.
+	Items map[string][]string
+	// MaxBytes rejects larger events; 0 means no limit.
+	MaxBytes int
+}
+
+type wireAnswer struct {
+	Version *int      `json:"version"`
+	ID      *string   `json:"id"`
+	Learner *string   `json:"learner"`
+	Item    *string   `json:"item"`
+	Skills  *[]string `json:"skills"`
+	Correct *bool     `json:"correct"`
+	At      *string   `json:"at"`
+}
+
+// Decode parses one event. Unknown fields are ignored; a wrong type, a
+// missing required field, an empty skill list, an unknown item or a time
+// that does not parse as RFC 3339 is an *AnswerError.
+func (d *NativeDecoder) Decode(b []byte) (Answer, error) {
+	if d.MaxBytes > 0 && len(b) > d.MaxBytes {
+		return Answer{}, &AnswerError{Reason: fmt.Sprintf("event is %d bytes, over the limit of %d", len(b), d.MaxBytes)}
+	}
+	var w wireAnswer
+	if err := json.Unmarshal(b, &w); err != nil {
+		var te *json.UnmarshalTypeError
+		if errors.As(err, &te) {
+			return Answer{}, &AnswerError{Field: te.Field, Reason: fmt.Sprintf("must be a JSON %s, not %s", jsonKind(te.Type.Kind().String()), te.Value)}
+		}
+		return Answer{}, &AnswerError{Reason: "not valid JSON: " + err.Error()}
+	}
+	if w.Version != nil && *w.Version != NativeVersion {
+		return Answer{}, &AnswerError{Field: "version", Reason: fmt.Sprintf("version %d is not supported (this build reads version %d)", *w.Version, NativeVersion)}
+	}
+	var a Answer
+	switch {
+	case w.ID == nil:
+		return a, &AnswerError{Field: "id", Reason: "missing"}
+	case *w.ID == "":
+		return a, &AnswerError{Field: "id", Reason: "empty"}
+	case w.Learner == nil:
+		return a, &AnswerError{Field: "learner", Reason: "missing"}
+	case *w.Learner == "":
+		return a, &AnswerError{Field: "learner", Reason: "empty"}
+	case w.Correct == nil:
+		return a, &AnswerError{Field: "correct", Reason: "missing"}
+	case w.At == nil:
+		return a, &AnswerError{Field: "at", Reason: "missing"}
+	}
+	a.ID, a.Learner, a.Correct = *w.ID, *w.Learner, *w.Correct
+	if w.Item != nil {
+		a.Item = *w.Item
+	}
+	at, err := time.Parse(time.RFC3339Nano, *w.At)
+	if err != nil {
+		return a, &AnswerError{Field: "at", Reason: fmt.Sprintf("%q is not an RFC 3339 time", *w.At)}
+	}
+	a.At = at
+	switch {
+	case w.Skills != nil:
+		a.Skills = *w.Skills
+		if len(a.Skills) == 0 {
+			return a, &AnswerError{Field: "skills", Reason: "empty list: an answer must be tagged with at least one skill"}
+		}
+		for _, s := range a.Skills {
+			if s == "" {
+				return a, &AnswerError{Field: "skills", Reason: "contains an empty skill name"}
+			}
+		}
+	case a.Item != "" && d.Items != nil:
+		skills, ok := d.Items[a.Item]
+		if !ok || len(skills) == 0 {
+			return a, &AnswerError{Field: "item", Reason: fmt.Sprintf("item %q has no skills in the item map and the event lists none", a.Item)}
+		}
+		a.Skills = skills
+	default:
+		return a, &AnswerError{Field: "skills", Reason: "missing (and no item map resolves the item)"}
+	}
+	return a, nil
+}
+
+func jsonKind(k string) string {
+	switch k {
+	case "string":
+		return "string"
+	case "bool":
+		return "boolean"
+	case "slice":
+		return "array"
+	case "int", "int64", "float64":
+		return "number"
+	}
+	return k
+}
