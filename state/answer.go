@@ -4,6 +4,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"strings"
 	"time"
 )
 
@@ -93,6 +94,9 @@ func (d *NativeDecoder) Decode(b []byte) (Answer, error) {
 		return a, &AnswerError{Field: "at", Reason: "missing"}
 	}
 	a.ID, a.Learner, a.Correct = *w.ID, *w.Learner, *w.Correct
+	if strings.IndexByte(a.Learner, 0) >= 0 {
+		return a, &AnswerError{Field: "learner", Reason: "contains a NUL byte"}
+	}
 	if w.Item != nil {
 		a.Item = *w.Item
 	}
@@ -110,6 +114,9 @@ func (d *NativeDecoder) Decode(b []byte) (Answer, error) {
 		for _, s := range a.Skills {
 			if s == "" {
 				return a, &AnswerError{Field: "skills", Reason: "contains an empty skill name"}
+			}
+			if strings.IndexByte(s, 0) >= 0 {
+				return a, &AnswerError{Field: "skills", Reason: "a skill name contains a NUL byte"}
 			}
 		}
 	case a.Item != "" && d.Items != nil:
