@@ -68,13 +68,32 @@ func (d *NativeDecoder) Decode(b []byte) (Answer, error) {
 		return Answer{}, &AnswerError{Reason: fmt.Sprintf("event is %d bytes, over the limit of %d", len(b), d.MaxBytes)}
 	}
 	var w wireAnswer
-	if err := json.Unmarshal(b, &w); err != nil {
-		var te *json.UnmarshalTypeError
-		if errors.As(err, &te) {
-			return Answer{}, &AnswerError{Field: te.Field, Reason: fmt.Sprintf("must be a JSON %s, not %s", jsonKind(te.Type.Kind().String()), te.Value)}
+	var skills []string
+	if !scanAnswer(b, &w, &skills) {
+		w = wireAnswer{}
+		if err := decodeSlow(b, &w); err != nil {
+			return Answer{}, err
 		}
-		return Answer{}, &AnswerError{Reason: "not valid JSON: " + err.Error()}
 	}
+	return d.validate(&w)
+}
+
+// decodeSlow decodes with encoding/json and explains what is wrong.
+func decodeSlow(b []byte, w *wireAnswer) error {
+	if err := json.Unmarshal(b, w); err != nil {
+		var te *json.UnmarshalTypeError
+		if errors.As(err, &te) && te.Field == "" {
+			return &AnswerError{Reason: "the event must be a JSON object, not " + te.Value}
+		}
+		if errors.As(err, &te) {
+			return &AnswerError{Field: te.Field, Reason: fmt.Sprintf("must be a JSON %s, not %s", jsonKind(te.Type.Kind().String()), te.Value)}
+		}
+		return &AnswerError{Reason: "not valid JSON: " + err.Error()}
+	}
+	return nil
+}
+
+func (d *NativeDecoder) validate(w *wireAnswer) (Answer, error) {
 	if w.Version != nil && *w.Version != NativeVersion {
 		return Answer{}, &AnswerError{Field: "version", Reason: fmt.Sprintf("version %d is not supported (this build reads version %d)", *w.Version, NativeVersion)}
 	}

@@ -1,0 +1,343 @@
+package state
+
+import (
+	"strings"
+	"unicode/utf8"
+)
+
+// scanAnswer is the decoder's fast path: a single pass over an event of the
+// common shape (a flat object whose strings have no escapes). It reports ok
+// = false for anything else — escapes, nulls, duplicate or differently cased
+// keys, malformed JSON — and the caller falls back to encoding/json, which
+// then decides and explains. For every input where ok is true, the result
+// equals encoding/json's (FuzzDecodeFastPath checks this).
+func scanAnswer(b []byte, w *wireAnswer, skills *[]string) (ok bool) {
+	s := scanner{b: b}
+	s.ws()
+	if !s.eat('{') {
+		return false
+	}
+	var seen uint8
+	s.ws()
+	if s.eat('}') {
+		return s.end()
+	}
+	for {
+		s.ws()
+		key, ok := s.str()
+		if !ok {
+			return false
+		}
+		s.ws()
+		if !s.eat(':') {
+			return false
+		}
+		s.ws()
+		var bit uint8
+		switch key {
+		case "id":
+			bit = 1
+			v, ok := s.str()
+			if !ok {
+				return false
+			}
+			w.ID = &v
+		case "learner":
+			bit = 2
+			v, ok := s.str()
+			if !ok {
+				return false
+			}
+			w.Learner = &v
+		case "item":
+			bit = 4
+			v, ok := s.str()
+			if !ok {
+				return false
+			}
+			w.Item = &v
+		case "at":
+			bit = 8
+			v, ok := s.str()
+			if !ok {
+				return false
+			}
+			w.At = &v
+		case "correct":
+			bit = 16
+			v, ok := s.boolean()
+			if !ok {
+				return false
+			}
+			w.Correct = &v
+		case "skills":
+			bit = 32
+			if !s.strArray(skills) {
+				return false
+			}
+			w.Skills = skills
+		case "version":
+			bit = 64
+			v, ok := s.smallInt()
+			if !ok {
+				return false
+			}
+			w.Version = &v
+		default:
+			if foldsToKnown(key) || !s.skipValue(0) {
+				return false
+			}
+		}
+		if seen&bit != 0 {
+			return false // a repeated key: let encoding/json decide
+		}
+		seen |= bit
+		s.ws()
+		if s.eat(',') {
+			continue
+		}
+		if s.eat('}') {
+			return s.end()
+		}
+		return false
+	}
+}
+
+// foldsToKnown reports whether key would match a known field under
+// encoding/json's case-insensitive matching.
+func foldsToKnown(key string) bool {
+	for _, k := range [...]string{"id", "learner", "item", "at", "correct", "skills", "version"} {
+		if strings.EqualFold(key, k) {
+			return true
+		}
+	}
+	// encoding/json also folds the Kelvin sign and long s; keys with
+	// non-ASCII bytes go the slow way.
+	for i := 0; i < len(key); i++ {
+		if key[i] >= utf8.RuneSelf {
+			return true
+		}
+	}
+	return false
+}
+
+type scanner struct {
+	b []byte
+	i int
+}
+
+func (s *scanner) ws() {
+	for s.i < len(s.b) {
+		switch s.b[s.i] {
+		case ' ', '\t', '\n', '\r':
+			s.i++
+		default:
+			return
+		}
+	}
+}
+
+func (s *scanner) eat(c byte) bool {
+	if s.i < len(s.b) && s.b[s.i] == c {
+		s.i++
+		return true
+	}
+	return false
+}
+
+func (s *scanner) end() bool {
+	s.ws()
+	return s.i == len(s.b)
+}
+
+// str reads a string without escapes; control characters and invalid UTF-8
+// send the event the slow way.
+func (s *scanner) str() (string, bool) {
+	if !s.eat('"') {
+		return "", false
+	}
+	start := s.i
+	ascii := true
+	for s.i < len(s.b) {
+		c := s.b[s.i]
+		switch {
+		case c == '"':
+			v := s.b[start:s.i]
+			s.i++
+			if !ascii && !utf8.Valid(v) {
+				return "", false
+			}
+			return string(v), true
+		case c == '\\' || c < 0x20:
+			return "", false
+		case c >= utf8.RuneSelf:
+			ascii = false
+		}
+		s.i++
+	}
+	return "", false
+}
+
+func (s *scanner) lit(word string) bool {
+	if len(s.b)-s.i >= len(word) && string(s.b[s.i:s.i+len(word)]) == word {
+		s.i += len(word)
+		return true
+	}
+	return false
+}
+
+func (s *scanner) boolean() (bool, bool) {
+	if s.lit("true") {
+		return true, true
+	}
+	if s.lit("false") {
+		return false, true
+	}
+	return false, false
+}
+
+// smallInt reads a plain non-negative integer of at most 6 digits.
+func (s *scanner) smallInt() (int, bool) {
+	n, digits := 0, 0
+	for s.i < len(s.b) && s.b[s.i] >= '0' && s.b[s.i] <= '9' && digits < 7 {
+		n = n*10 + int(s.b[s.i]-'0')
+		s.i++
+		digits++
+	}
+	if digits == 0 || digits > 6 || (digits > 1 && s.b[s.i-digits] == '0') {
+		return 0, false
+	}
+	if s.i < len(s.b) {
+		switch s.b[s.i] {
+		case '.', 'e', 'E':
+			return 0, false
+		}
+	}
+	return n, true
+}
+
+func (s *scanner) strArray(out *[]string) bool {
+	if !s.eat('[') {
+		return false
+	}
+	*out = (*out)[:0]
+	s.ws()
+	if s.eat(']') {
+		if *out == nil {
+			*out = []string{}
+		}
+		return true
+	}
+	for {
+		s.ws()
+		v, ok := s.str()
+		if !ok {
+			return false
+		}
+		*out = append(*out, v)
+		s.ws()
+		if s.eat(',') {
+			continue
+		}
+		return s.eat(']')
+	}
+}
+
+// skipValue skips one JSON value of an unknown field, strictly enough that
+// anything it accepts is valid JSON.
+func (s *scanner) skipValue(depth int) bool {
+	if depth > 32 || s.i >= len(s.b) {
+		return false
+	}
+	switch c := s.b[s.i]; {
+	case c == '"':
+		_, ok := s.str()
+		return ok
+	case c == '{':
+		s.i++
+		s.ws()
+		if s.eat('}') {
+			return true
+		}
+		for {
+			s.ws()
+			if _, ok := s.str(); !ok {
+				return false
+			}
+			s.ws()
+			if !s.eat(':') {
+				return false
+			}
+			s.ws()
+			if !s.skipValue(depth + 1) {
+				return false
+			}
+			s.ws()
+			if s.eat(',') {
+				continue
+			}
+			return s.eat('}')
+		}
+	case c == '[':
+		s.i++
+		s.ws()
+		if s.eat(']') {
+			return true
+		}
+		for {
+			s.ws()
+			if !s.skipValue(depth + 1) {
+				return false
+			}
+			s.ws()
+			if s.eat(',') {
+				continue
+			}
+			return s.eat(']')
+		}
+	case c == 't':
+		return s.lit("true")
+	case c == 'f':
+		return s.lit("false")
+	case c == 'n':
+		return s.lit("null")
+	case c == '-' || (c >= '0' && c <= '9'):
+		return s.number()
+	}
+	return false
+}
+
+// number accepts exactly the JSON number grammar.
+func (s *scanner) number() bool {
+	s.eat('-')
+	if s.eat('0') {
+	} else if s.i < len(s.b) && s.b[s.i] >= '1' && s.b[s.i] <= '9' {
+		for s.i < len(s.b) && s.b[s.i] >= '0' && s.b[s.i] <= '9' {
+			s.i++
+		}
+	} else {
+		return false
+	}
+	if s.eat('.') {
+		if !s.digits() {
+			return false
+		}
+	}
+	if s.eat('e') || s.eat('E') {
+		if !s.eat('+') {
+			s.eat('-')
+		}
+		if !s.digits() {
+			return false
+		}
+	}
+	return true
+}
+
+func (s *scanner) digits() bool {
+	start := s.i
+	for s.i < len(s.b) && s.b[s.i] >= '0' && s.b[s.i] <= '9' {
+		s.i++
+	}
+	return s.i > start
+}
