@@ -1,0 +1,207 @@
+package state
+
+import (
+	"bufio"
+	"fmt"
+	"math/rand/v2"
+	"os"
+	"runtime"
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+)
+
+var stepSink float64
+
+// BenchmarkParamsStep is one BKT update (evidence + transition). Target:
+// ≤ 10 ns/op.
+func BenchmarkParamsStep(b *testing.B) {
+	p := Params{Prior: 0.3, Learn: 0.1, Guess: 0.2, Slip: 0.1, Forget: 0.01}
+	pL := 0.3
+	for i := 0; b.Loop(); i++ {
+		pL = p.Step(pL, i&3 != 0)
+	}
+	stepSink = pL
+}
+
+// benchAnswers builds n answers over `learners` learners and the six demo
+// skills, ids unique, times increasing.
+func benchAnswers(n, learners int, seed uint64) []Answer {
+	r := rand.New(rand.NewPCG(seed, 1))
+	names := make([]string, learners)
+	for i := range names {
+		names[i] = "learner-" + strconv.Itoa(i)
+	}
+	t0 := time.Date(2025, 9, 1, 18, 0, 0, 0, time.UTC)
+	as := make([]Answer, n)
+	skills := make([][]string, len(skillNames))
+	for i := range skills {
+		skills[i] = skillNames[i : i+1]
+	}
+	for i := range as {
+		as[i] = Answer{ID: "a" + strconv.Itoa(i), Learner: names[r.IntN(learners)], Skills: skills[r.IntN(len(skills))],
+			Correct: r.IntN(3) != 0, At: t0.Add(time.Duration(i) * time.Second)}
+	}
+	return as
+}
+
+// commitEvery is the batch size of the stream processor's default
+// (batch.max_answers = 2000).
+const commitEvery = 2000
+
+func runApply(b *testing.B, s *Store, as []Answer) {
+	pt, err := s.Partition(0)
+	if err != nil {
+		b.Fatal(err)
+	}
+	pf := NewParamFile()
+	b.ResetTimer()
+	start := time.Now()
+	for i := 0; i < b.N; i++ {
+		if _, err := pt.Apply(as[i], int64(i), pf); err != nil {
+			b.Fatal(err)
+		}
+		if pt.Pending() >= commitEvery {
+			if err := pt.Commit(false); err != nil {
+				b.Fatal(err)
+			}
+		}
+	}
+	if err := pt.Commit(false); err != nil {
+		b.Fatal(err)
+	}
+	b.StopTimer()
+	b.ReportMetric(float64(b.N)/time.Since(start).Seconds(), "answers/s")
+}
+
+// BenchmarkApplyCommit: answers of 50,000 learners over six skills (up to
+// 300,000 records, more than the default cache holds), committed every
+// 2000 answers with NoSync, as the stream processor does.
+func BenchmarkApplyCommit(b *testing.B) {
+	s, err := OpenStore(b.TempDir(), StoreOptions{})
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer s.Close()
+	as := benchAnswers(b.N, 50_000, 1)
+	runApply(b, s, as)
+	st := s.Stats()
+	b.ReportMetric(float64(st.CacheHits)/float64(max(1, st.CacheHits+st.CacheMisses)), "cache-hit-ratio")
+}
+
+// BenchmarkApplyHotLearners is the cache-hit path: 100 learners, whose
+// records and id windows are all cached after their first answers.
+func BenchmarkApplyHotLearners(b *testing.B) {
+	s, err := OpenStore(b.TempDir(), StoreOptions{})
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer s.Close()
+	as := benchAnswers(b.N, 100, 2)
+	runApply(b, s, as)
+}
+
+// BenchmarkCacheGet is one lookup in the record cache (hit).
+func BenchmarkCacheGet(b *testing.B) {
+	c := newLRU[Record](200_000)
+	keys := make([][]byte, 100_000)
+	for i := range keys {
+		keys[i] = recordKey(nil, 0, "learner-"+strconv.Itoa(i), "trial-balance")
+		c.put(0, string(keys[i]), Record{Mastery: 0.5})
+	}
+	i := 0
+	for b.Loop() {
+		if _, ok := c.get(0, keys[i%len(keys)]); !ok {
+			b.Fatal("miss")
+		}
+		i++
+	}
+}
+
+// BenchmarkMemory1MRecords builds 1,000,000 learner-skill records (250,000
+// learners × 4 skills) with the default options, then applies 1,000,000
+// more answers at random records (mostly cache misses: Pebble reads fill
+// the block cache), and reports the peak resident set (VmHWM, which
+// includes Pebble's block cache outside the Go heap). Target: ≤ 512 MiB.
+// Run alone: go test -run '^$' -bench Memory1M -benchtime 1x ./state/
+func BenchmarkMemory1MRecords(b *testing.B) {
+	if b.N > 1 {
+		b.Skip("one pass is the measurement; use -benchtime 1x")
+	}
+	const learners, perLearner = 250_000, 4
+	s, err := OpenStore(b.TempDir(), StoreOptions{})
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer s.Close()
+	pt, err := s.Partition(0)
+	if err != nil {
+		b.Fatal(err)
+	}
+	pf := NewParamFile()
+	t0 := time.Date(2025, 9, 1, 18, 0, 0, 0, time.UTC)
+	off := int64(0)
+	apply := func(l, sk int, correct bool) {
+		a := Answer{ID: "m" + strconv.FormatInt(off, 10), Learner: "learner-" + strconv.Itoa(l), Skills: skillNames[sk : sk+1],
+			Correct: correct, At: t0.Add(time.Duration(off) * time.Second)}
+		if _, err := pt.Apply(a, off, pf); err != nil {
+			b.Fatal(err)
+		}
+		off++
+		if pt.Pending() >= commitEvery {
+			if err := pt.Commit(false); err != nil {
+				b.Fatal(err)
+			}
+		}
+	}
+	start := time.Now()
+	for l := 0; l < learners; l++ {
+		for sk := 0; sk < perLearner; sk++ {
+			apply(l, sk, (l+sk)%3 != 0)
+		}
+	}
+	build := time.Since(start)
+	r := rand.New(rand.NewPCG(3, 3))
+	for i := 0; i < learners*perLearner; i++ {
+		apply(r.IntN(learners), r.IntN(perLearner), r.IntN(2) == 0)
+	}
+	if err := pt.Commit(false); err != nil {
+		b.Fatal(err)
+	}
+	st := s.Stats()
+	if st.Records != learners*perLearner {
+		b.Fatalf("records = %d, want %d", st.Records, learners*perLearner)
+	}
+	var ms runtime.MemStats
+	runtime.ReadMemStats(&ms)
+	hwm, rss := procStatusKiB(b, "VmHWM"), procStatusKiB(b, "VmRSS")
+	b.ReportMetric(float64(hwm)/1024, "peak-RSS-MiB")
+	b.ReportMetric(float64(rss)/1024, "RSS-MiB")
+	b.ReportMetric(float64(ms.HeapInuse)/(1<<20), "heap-inuse-MiB")
+	b.ReportMetric(float64(st.BlockCacheBytes)/(1<<20), "block-cache-MiB")
+	b.ReportMetric(float64(st.DiskBytes)/(1<<20), "disk-MiB")
+	b.ReportMetric(float64(learners*perLearner)/build.Seconds(), "build-answers/s")
+	b.ReportMetric(float64(st.CacheHits)/float64(max(1, st.CacheHits+st.CacheMisses)), "cache-hit-ratio")
+}
+
+// procStatusKiB reads a "Vm…: N kB" line of /proc/self/status.
+func procStatusKiB(b *testing.B, field string) int64 {
+	f, err := os.Open("/proc/self/status")
+	if err != nil {
+		b.Skipf("no /proc/self/status: %v", err)
+	}
+	defer f.Close()
+	sc := bufio.NewScanner(f)
+	for sc.Scan() {
+		if rest, ok := strings.CutPrefix(sc.Text(), field+":"); ok {
+			var kb int64
+			if _, err := fmt.Sscanf(strings.TrimSpace(rest), "%d kB", &kb); err != nil {
+				b.Fatalf("parsing %s: %v", field, err)
+			}
+			return kb
+		}
+	}
+	b.Fatalf("%s not in /proc/self/status", field)
+	return 0
+}

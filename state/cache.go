@@ -1,0 +1,154 @@
+package state
+
+import (
+	"sync"
+	"sync/atomic"
+)
+
+// lru is the store's write-through cache of committed values (records, id
+// windows), bounded by a count and evicting the least recently used. It
+// never holds staged state: partitions put values only after their commit
+// succeeded. Entries carry their partition's generation; dropPartition bumps
+// it, which invalidates every entry of the partition in O(1) (stale entries
+// are removed when met or evicted as the oldest).
+//
+// Entries live in one slice linked by int32 indexes, so the cache is a few
+// pointer-free arrays plus the key strings and the map.
+type lru[V any] struct {
+	mu     sync.Mutex
+	cap    int
+	m      map[string]int32
+	ents   []lruEnt[V]
+	head   int32 // most recently used; -1 when empty
+	tail   int32 // least recently used
+	free   int32 // free list through next; -1 when none
+	gens   map[int32]uint32
+	hits   atomic.Int64
+	misses atomic.Int64
+}
+
+type lruEnt[V any] struct {
+	key        string
+	val        V
+	part       int32
+	gen        uint32
+	prev, next int32
+}
+
+func newLRU[V any](capacity int) *lru[V] {
+	if capacity < 1 {
+		capacity = 1
+	}
+	return &lru[V]{cap: capacity, m: make(map[string]int32), head: -1, tail: -1, free: -1, gens: make(map[int32]uint32)}
+}
+
+// get returns the value under key (the key bytes are not retained).
+func (c *lru[V]) get(part int32, key []byte) (V, bool) {
+	c.mu.Lock()
+	i, ok := c.m[string(key)]
+	if ok {
+		e := &c.ents[i]
+		if e.gen != c.gens[part] {
+			c.removeLocked(i)
+			ok = false
+		} else {
+			c.moveToFrontLocked(i)
+			v := e.val
+			c.mu.Unlock()
+			c.hits.Add(1)
+			return v, true
+		}
+	}
+	c.mu.Unlock()
+	c.misses.Add(1)
+	var zero V
+	return zero, false
+}
+
+// put stores val under key, evicting the least recently used entry when full.
+func (c *lru[V]) put(part int32, key string, val V) {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	gen := c.gens[part]
+	if i, ok := c.m[key]; ok {
+		e := &c.ents[i]
+		e.val, e.part, e.gen = val, part, gen
+		c.moveToFrontLocked(i)
+		return
+	}
+	var i int32
+	switch {
+	case c.free >= 0:
+		i = c.free
+		c.free = c.ents[i].next
+	case len(c.ents) < c.cap:
+		c.ents = append(c.ents, lruEnt[V]{})
+		i = int32(len(c.ents) - 1)
+	default:
+		i = c.tail
+		c.unlinkLocked(i)
+		delete(c.m, c.ents[i].key)
+	}
+	c.ents[i] = lruEnt[V]{key: key, val: val, part: part, gen: gen, prev: -1, next: c.head}
+	if c.head >= 0 {
+		c.ents[c.head].prev = i
+	}
+	c.head = i
+	if c.tail < 0 {
+		c.tail = i
+	}
+	c.m[key] = i
+}
+
+// dropPartition invalidates every entry of partition part.
+func (c *lru[V]) dropPartition(part int32) {
+	c.mu.Lock()
+	c.gens[part]++
+	c.mu.Unlock()
+}
+
+// len is the number of entries held, stale ones included (the bound
+// applies to all of them).
+func (c *lru[V]) len() int {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	return len(c.m)
+}
+
+func (c *lru[V]) removeLocked(i int32) {
+	c.unlinkLocked(i)
+	delete(c.m, c.ents[i].key)
+	c.ents[i] = lruEnt[V]{next: c.free}
+	c.free = i
+}
+
+func (c *lru[V]) unlinkLocked(i int32) {
+	e := &c.ents[i]
+	if e.prev >= 0 {
+		c.ents[e.prev].next = e.next
+	} else {
+		c.head = e.next
+	}
+	if e.next >= 0 {
+		c.ents[e.next].prev = e.prev
+	} else {
+		c.tail = e.prev
+	}
+	e.prev, e.next = -1, -1
+}
+
+func (c *lru[V]) moveToFrontLocked(i int32) {
+	if c.head == i {
+		return
+	}
+	c.unlinkLocked(i)
+	e := &c.ents[i]
+	e.next = c.head
+	if c.head >= 0 {
+		c.ents[c.head].prev = i
+	}
+	c.head = i
+	if c.tail < 0 {
+		c.tail = i
+	}
+}

@@ -1,0 +1,608 @@
+package state
+
+import (
+	"errors"
+	"fmt"
+	"math"
+	"strings"
+	"sync/atomic"
+	"time"
+
+	"github.com/cockroachdb/pebble/v2"
+)
+
+// ApplyResult says what one Apply did.
+type ApplyResult struct {
+	Duplicate bool // id already applied for this learner: nothing changed except the offset
+	Late      bool // `at` earlier than the latest `at` of the learner so far (still applied, in arrival order)
+	Rederived int  // skills whose record was re-derived from history under a newer params version first
+	// PCorrect holds, per skill in a.Skills order, the prediction made
+	// before the answer (a skill named twice gets the same value twice; it
+	// is applied once).
+	PCorrect []float64
+	Outputs  []Output // reached/stuck events staged in the outbox by this answer
+	// Replayed is true when offset was at or below the stored or staged
+	// offset: the call did nothing (the answer was already applied).
+	Replayed bool
+}
+
+// Output is a reached or stuck event, as staged in the outbox.
+type Output struct {
+	Kind          Kind
+	Learner       string
+	Skill         string
+	Mastery       float64
+	Opportunities uint32
+	ParamsVersion int64
+	AnswerID      string
+	At            time.Time
+	ID            string // EventID(Learner, Skill, Kind, Opportunities)
+}
+
+// DeadLetter is a rejected input event, as staged in the outbox.
+type DeadLetter struct {
+	Raw       []byte
+	Key       []byte
+	Topic     string
+	Partition int32
+	Offset    int64
+	Reason    string
+	Field     string
+	At        time.Time // message time
+}
+
+// Partition is the handle through which one goroutine changes one
+// partition's state. Changes are staged in memory and in a pending Pebble
+// batch; reads through the handle see them; Commit writes them together with
+// the consumed offset in one atomic batch. A handle is not safe for
+// concurrent use. Taking a new handle of the same partition (Store.Partition)
+// fences the old one: it returns ErrPartitionReleased from then on and can
+// commit nothing.
+type Partition struct {
+	s      *Store
+	p      int32
+	slot   *partSlot
+	fenced atomic.Bool // set by a newer handle or Close, under slot.mu
+
+	released bool
+
+	committed partState // as stored
+	staged    partState // as it will be stored by the next Commit
+	pending   int       // offsets staged since the last Commit
+	outboxN   int64     // outbox entries staged
+
+	batch *pebble.Batch
+	recs  map[string]*stagedRec // record key → staged record
+	wins  map[string]*window    // window key → staged window
+	hist  []stagedHist          // history appended since the last Commit, in order
+
+	kbuf, vbuf, wkbuf []byte
+	rkbuf             []byte // record keys of the answer being applied (skillWork.rk views into it)
+	work              []skillWork
+}
+
+type stagedRec struct {
+	key   string // record key (shared by the staged history entries)
+	rec   Record
+	isNew bool
+}
+
+type stagedHist struct {
+	rk  string // record key of the learner-skill
+	opp uint32
+	h   HistoryEntry
+}
+
+type skillWork struct {
+	rk        []byte // view into Partition.rkbuf
+	sr        *stagedRec
+	rec       Record
+	isNew     bool
+	params    Params
+	first     int // index in a.Skills of the first occurrence
+	rederived bool
+}
+
+// Partition returns the handle of partition p (p ≥ 0). Any older handle of
+// p is fenced, and p's cache entries are dropped. It reads one key.
+func (s *Store) Partition(p int32) (*Partition, error) {
+	if p < 0 {
+		return nil, fmt.Errorf("attain: partition %d: must be 0 or more", p)
+	}
+	s.closeMu.RLock()
+	defer s.closeMu.RUnlock()
+	if s.closed {
+		return nil, ErrStoreClosed
+	}
+	s.mu.Lock()
+	sl := s.slots[p]
+	if sl == nil {
+		sl = &partSlot{}
+		s.slots[p] = sl
+	}
+	s.mu.Unlock()
+
+	sl.mu.Lock()
+	defer sl.mu.Unlock()
+	if old := sl.handle; old != nil {
+		old.fenced.Store(true)
+		s.log.Warn().Int32("partition", p).Msg("partition taken while an older handle was not released; the older one is fenced")
+	}
+	s.recCache.dropPartition(p)
+	s.winCache.dropPartition(p)
+	st := partState{nextSeq: 1}
+	v, closer, err := s.db.Get(stateKey(p))
+	switch {
+	case err == nil:
+		st, err = decodePartState(v)
+		closer.Close()
+		if err != nil {
+			return nil, fmt.Errorf("attain: partition %d: %w", p, err)
+		}
+	case errors.Is(err, pebble.ErrNotFound):
+	default:
+		return nil, fmt.Errorf("attain: partition %d: reading its state: %w", p, err)
+	}
+	if st.nextSeq == 0 {
+		st.nextSeq = 1
+	}
+	pt := &Partition{
+		s:         s,
+		p:         p,
+		slot:      sl,
+		committed: st,
+		staged:    st,
+		batch:     s.db.NewBatch(),
+		recs:      make(map[string]*stagedRec),
+		wins:      make(map[string]*window),
+	}
+	sl.handle = pt
+	return pt, nil
+}
+
+// ID is the partition number.
+func (pt *Partition) ID() int32 { return pt.p }
+
+// NextOffset returns the committed consumed offset + 1: where consumption
+// resumes. ok is false when the partition has no stored offset.
+func (pt *Partition) NextOffset() (next int64, ok bool) {
+	if !pt.committed.hasOffset {
+		return 0, false
+	}
+	return pt.committed.offset + 1, true
+}
+
+// Pending is the number of offsets staged since the last Commit.
+func (pt *Partition) Pending() int { return pt.pending }
+
+// usable reports why the handle may not be used; the caller holds
+// s.closeMu shared.
+func (pt *Partition) usable() error {
+	if pt.s.closed {
+		return ErrStoreClosed
+	}
+	if pt.released || pt.fenced.Load() {
+		return fmt.Errorf("%w: partition %d", ErrPartitionReleased, pt.p)
+	}
+	return nil
+}
+
+// replay reports whether offset was already consumed (stored or staged).
+func (pt *Partition) replay(offset int64) bool {
+	if pt.staged.hasOffset && offset <= pt.staged.offset {
+		pt.s.replayed.Add(1)
+		return true
+	}
+	return false
+}
+
+func (pt *Partition) advance(offset int64) {
+	pt.staged.offset, pt.staged.hasOffset = offset, true
+	pt.pending++
+}
+
+// The times whose Unix nanoseconds fit an int64 (Record.Updated and
+// HistoryEntry.At hold them).
+var (
+	minAt = time.Unix(0, math.MinInt64)
+	maxAt = time.Unix(0, math.MaxInt64)
+)
+
+// checkAnswer rejects what the key layout cannot hold.
+func checkAnswer(a *Answer) error {
+	switch {
+	case a.ID == "":
+		return &AnswerError{Field: "id", Reason: "empty"}
+	case a.Learner == "":
+		return &AnswerError{Field: "learner", Reason: "empty"}
+	case strings.IndexByte(a.Learner, 0) >= 0:
+		return &AnswerError{Field: "learner", Reason: "contains a NUL byte"}
+	case len(a.Skills) == 0:
+		return &AnswerError{Field: "skills", Reason: "empty list: an answer must be tagged with at least one skill"}
+	}
+	if a.At.Before(minAt) || a.At.After(maxAt) {
+		return &AnswerError{Field: "at", Reason: fmt.Sprintf("%s is outside the storable range %s to %s (Unix nanoseconds in 64 bits)", a.At.Format(time.RFC3339), minAt.Format(time.RFC3339), maxAt.Format(time.RFC3339))}
+	}
+	for _, s := range a.Skills {
+		if s == "" {
+			return &AnswerError{Field: "skills", Reason: "contains an empty skill name"}
+		}
+		if strings.IndexByte(s, 0) >= 0 {
+			return &AnswerError{Field: "skills", Reason: "a skill name contains a NUL byte"}
+		}
+	}
+	return nil
+}
+
+// Apply stages answer a, consumed at offset, under params (see the
+// package contract: duplicate ids are skipped, a record computed under
+// another parameter version is first re-derived from its history, outputs
+// go to the outbox). An offset at or below the stored or staged offset is a
+// no-op (Replayed). An error leaves the staging as it was; an *AnswerError
+// (errors.Is ErrBadAnswer) means the answer cannot be stored and should be
+// dead-lettered.
+func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResult, error) {
+	s := pt.s
+	s.closeMu.RLock()
+	defer s.closeMu.RUnlock()
+	if err := pt.usable(); err != nil {
+		return ApplyResult{}, err
+	}
+	if pt.replay(offset) {
+		return ApplyResult{Replayed: true}, nil
+	}
+	if params == nil {
+		return ApplyResult{}, fmt.Errorf("attain: partition %d: Apply needs a parameter set (nil given)", pt.p)
+	}
+	if err := checkAnswer(&a); err != nil {
+		return ApplyResult{}, err
+	}
+
+	// Phase 1: every read that can fail, before anything is staged.
+	pt.wkbuf = windowKey(pt.wkbuf[:0], pt.p, a.Learner)
+	w, wStaged, err := pt.loadWindow(pt.wkbuf)
+	if err != nil {
+		return ApplyResult{}, err
+	}
+	h := idHash(a.ID)
+	if w.contains(h) {
+		pt.advance(offset)
+		s.duplicates.Add(1)
+		return ApplyResult{Duplicate: true}, nil
+	}
+	at := a.At.UnixNano()
+	res := ApplyResult{Late: w.hasAt && at < w.lastAt, PCorrect: make([]float64, len(a.Skills))}
+
+	pt.work = pt.work[:0]
+	kb := pt.rkbuf[:0]
+	for i, skill := range a.Skills {
+		if dupSkill(a.Skills[:i], skill) {
+			continue
+		}
+		p, v := params.For(skill)
+		start := len(kb)
+		kb = recordKey(kb, pt.p, a.Learner, skill)
+		sw := skillWork{params: p, first: i}
+		sw.rk = kb[start:len(kb):len(kb)]
+		if err := pt.loadRecord(&sw, v); err != nil {
+			return ApplyResult{}, err
+		}
+		if sw.rec.ParamsVersion != v {
+			if sw.rec.Opportunities > 0 {
+				rec, err := pt.rederive(sw.rk, p, v, sw.rec.Opportunities)
+				if err != nil {
+					return ApplyResult{}, err
+				}
+				sw.rec, sw.rederived = rec, true
+			} else {
+				sw.rec = NewRecord(p, v)
+			}
+		}
+		pt.work = append(pt.work, sw)
+	}
+	pt.rkbuf = kb
+
+	// Phase 2: stage. Nothing below can fail.
+	pol := s.opt.Policy
+	for k := range pt.work {
+		sw := &pt.work[k]
+		out := sw.rec.Apply(sw.params, a.Correct, at, pol)
+		res.PCorrect[sw.first] = out.PCorrect
+		if sw.rederived {
+			res.Rederived++
+		}
+		if sw.sr == nil {
+			sw.sr = &stagedRec{key: string(sw.rk), isNew: sw.isNew}
+			pt.recs[sw.sr.key] = sw.sr
+			if sw.isNew {
+				pt.staged.records++
+			}
+		}
+		sw.sr.rec = sw.rec
+		he := HistoryEntry{At: at, Correct: a.Correct}
+		pt.kbuf = historyKeyFromRecordKey(pt.kbuf[:0], sw.rk, sw.rec.Opportunities)
+		pt.vbuf = appendHistory(pt.vbuf[:0], he)
+		pt.set(pt.kbuf, pt.vbuf)
+		pt.hist = append(pt.hist, stagedHist{rk: sw.sr.key, opp: sw.rec.Opportunities, h: he})
+		for _, kind := range [2]Kind{KindReached, KindStuck} {
+			if (kind == KindReached && !out.Reached) || (kind == KindStuck && !out.Stuck) {
+				continue
+			}
+			skill := a.Skills[sw.first]
+			o := Output{
+				Kind: kind, Learner: a.Learner, Skill: skill, Mastery: sw.rec.Mastery,
+				Opportunities: sw.rec.Opportunities, ParamsVersion: sw.rec.ParamsVersion,
+				AnswerID: a.ID, At: a.At, ID: EventID(a.Learner, skill, kind, sw.rec.Opportunities),
+			}
+			pt.stageOutbox(&OutboxEntry{Output: &o})
+			res.Outputs = append(res.Outputs, o)
+		}
+	}
+	for i, skill := range a.Skills {
+		for k := range pt.work {
+			if a.Skills[pt.work[k].first] == skill {
+				res.PCorrect[i] = res.PCorrect[pt.work[k].first]
+				break
+			}
+		}
+	}
+	w.add(h, at, s.opt.DedupeWindow)
+	if !wStaged {
+		pt.wins[string(pt.wkbuf)] = w
+	}
+	pt.advance(offset)
+	s.applied.Add(1)
+	if res.Late {
+		s.late.Add(1)
+	}
+	s.rederived.Add(int64(res.Rederived))
+	return res, nil
+}
+
+func dupSkill(prev []string, skill string) bool {
+	for _, s := range prev {
+		if s == skill {
+			return true
+		}
+	}
+	return false
+}
+
+func (pt *Partition) set(k, v []byte) {
+	// Batch.Set copies k and v; it fails only on a closed batch, which a
+	// live handle never has.
+	if err := pt.batch.Set(k, v, nil); err != nil {
+		panic(fmt.Sprintf("attain: staging into partition %d's batch: %v", pt.p, err))
+	}
+}
+
+func (pt *Partition) stageOutbox(e *OutboxEntry) {
+	seq := pt.staged.nextSeq
+	pt.staged.nextSeq++
+	e.Partition, e.Seq = pt.p, seq
+	pt.kbuf = outboxKey(pt.kbuf[:0], pt.p, seq)
+	pt.vbuf = appendOutbox(pt.vbuf[:0], e)
+	pt.set(pt.kbuf, pt.vbuf)
+	pt.outboxN++
+}
+
+// loadWindow returns the learner's window: staged (the overlay's own,
+// staged=true), else a copy of the cached or stored one, else a new one.
+func (pt *Partition) loadWindow(wk []byte) (w *window, staged bool, err error) {
+	if w := pt.wins[string(wk)]; w != nil {
+		return w, true, nil
+	}
+	if cw, ok := pt.s.winCache.get(pt.p, wk); ok {
+		c := cw.clone()
+		return &c, false, nil
+	}
+	v, closer, err := pt.s.db.Get(wk)
+	if errors.Is(err, pebble.ErrNotFound) {
+		return &window{}, false, nil
+	}
+	if err != nil {
+		return nil, false, fmt.Errorf("attain: partition %d: reading id window %q: %w", pt.p, wk, err)
+	}
+	defer closer.Close()
+	dw, err := decodeWindow(v)
+	if err != nil {
+		return nil, false, fmt.Errorf("attain: partition %d: id window %q: %w", pt.p, wk, err)
+	}
+	return &dw, false, nil
+}
+
+// loadRecord fills sw from the staging, the cache or Pebble; a record that
+// exists nowhere is NewRecord(sw.params, v).
+func (pt *Partition) loadRecord(sw *skillWork, v int64) error {
+	if sr := pt.recs[string(sw.rk)]; sr != nil {
+		sw.sr, sw.rec = sr, sr.rec
+		return nil
+	}
+	if r, ok := pt.s.recCache.get(pt.p, sw.rk); ok {
+		sw.rec = r
+		return nil
+	}
+	val, closer, err := pt.s.db.Get(sw.rk)
+	if errors.Is(err, pebble.ErrNotFound) {
+		sw.rec, sw.isNew = NewRecord(sw.params, v), true
+		return nil
+	}
+	if err != nil {
+		return fmt.Errorf("attain: partition %d: reading record %q: %w", pt.p, sw.rk, err)
+	}
+	defer closer.Close()
+	sw.rec, err = decodeRecord(val)
+	if err != nil {
+		return fmt.Errorf("attain: partition %d: record %q: %w", pt.p, sw.rk, err)
+	}
+	return nil
+}
+
+// rederive replays the learner-skill's history (committed, then staged)
+// under p from NewRecord(p, v), emitting nothing.
+func (pt *Partition) rederive(rk []byte, p Params, v int64, want uint32) (Record, error) {
+	rec := NewRecord(p, v)
+	pol := pt.s.opt.Policy
+	var n uint32
+	err := pt.s.historyOf(pt.s.db, rk, func(h HistoryEntry) {
+		rec.Apply(p, h.Correct, h.At, pol)
+		n++
+	})
+	if err != nil {
+		return Record{}, fmt.Errorf("attain: partition %d: re-deriving %q: %w", pt.p, rk, err)
+	}
+	for i := range pt.hist {
+		if pt.hist[i].rk == string(rk) {
+			rec.Apply(p, pt.hist[i].h.Correct, pt.hist[i].h.At, pol)
+			n++
+		}
+	}
+	if n != want {
+		pt.s.log.Error().Int32("partition", pt.p).Bytes("record", rk).Uint32("history", n).Uint32("opportunities", want).
+			Msg("history length differs from the record's opportunities; re-derived from the history found")
+	}
+	return rec, nil
+}
+
+// DeadLetter stages a dead-letter outbox entry for the event at offset, and
+// the offset. An offset at or below the stored or staged one is a no-op.
+func (pt *Partition) DeadLetter(dl DeadLetter, offset int64) error {
+	s := pt.s
+	s.closeMu.RLock()
+	defer s.closeMu.RUnlock()
+	if err := pt.usable(); err != nil {
+		return err
+	}
+	if pt.replay(offset) {
+		return nil
+	}
+	pt.stageOutbox(&OutboxEntry{DeadLetter: &dl})
+	pt.advance(offset)
+	s.deadLetters.Add(1)
+	return nil
+}
+
+// Skip stages only the offset advance (a tombstone, an empty message). An
+// offset at or below the stored or staged one is a no-op.
+func (pt *Partition) Skip(offset int64) error {
+	s := pt.s
+	s.closeMu.RLock()
+	defer s.closeMu.RUnlock()
+	if err := pt.usable(); err != nil {
+		return err
+	}
+	if pt.replay(offset) {
+		return nil
+	}
+	pt.advance(offset)
+	s.skipped.Add(1)
+	return nil
+}
+
+// Commit writes everything staged — records, history, id windows, outbox
+// entries and the consumed offset — in one atomic Pebble batch; with sync
+// it waits for the WAL to reach the disk (pebble.Sync), otherwise it does
+// not (pebble.NoSync: a crash may lose the tail of commits, which replay
+// from the stored offset restores, since the offset is in the same batch).
+// Nothing staged: no write. On error the staging is dropped (the handle
+// stays usable; resume from NextOffset).
+func (pt *Partition) Commit(sync bool) error {
+	s := pt.s
+	s.closeMu.RLock()
+	defer s.closeMu.RUnlock()
+	if err := pt.usable(); err != nil {
+		return err
+	}
+	if pt.pending == 0 {
+		return nil
+	}
+	pt.slot.mu.Lock()
+	defer pt.slot.mu.Unlock()
+	if pt.slot.handle != pt || pt.fenced.Load() {
+		pt.dropStaging()
+		return fmt.Errorf("%w: partition %d (a newer handle took it)", ErrPartitionReleased, pt.p)
+	}
+	s.mu.Lock()
+	s.parts[pt.p] = struct{}{} // before the commit, so readers that list partitions after opening an iterator see it
+	s.mu.Unlock()
+
+	for k, sr := range pt.recs {
+		pt.vbuf = appendRecord(pt.vbuf[:0], sr.rec)
+		pt.kbuf = append(pt.kbuf[:0], k...)
+		pt.set(pt.kbuf, pt.vbuf)
+	}
+	for k, w := range pt.wins {
+		pt.vbuf = appendWindow(pt.vbuf[:0], w)
+		pt.kbuf = append(pt.kbuf[:0], k...)
+		pt.set(pt.kbuf, pt.vbuf)
+	}
+	pt.vbuf = appendPartState(pt.vbuf[:0], pt.staged)
+	pt.set(stateKey(pt.p), pt.vbuf)
+	wo := pebble.NoSync
+	if sync {
+		wo = pebble.Sync
+	}
+	if err := pt.batch.Commit(wo); err != nil {
+		s.commitFailures.Add(1)
+		pt.dropStaging()
+		return fmt.Errorf("attain: committing partition %d (%d offsets up to %d): %w", pt.p, pt.pending, pt.staged.offset, err)
+	}
+	for k, sr := range pt.recs {
+		s.recCache.put(pt.p, k, sr.rec)
+	}
+	for k, w := range pt.wins {
+		s.winCache.put(pt.p, k, *w)
+	}
+	s.depth.Add(pt.outboxN)
+	s.records.Add(int64(pt.staged.records) - int64(pt.committed.records))
+	s.commits.Add(1)
+	pt.committed = pt.staged
+	pt.batch.Reset()
+	pt.clearStaging()
+	return nil
+}
+
+// dropStaging forgets everything staged and the partition's cache entries.
+func (pt *Partition) dropStaging() {
+	pt.batch.Close()
+	pt.batch = nil
+	if !pt.s.closed {
+		pt.batch = pt.s.db.NewBatch()
+	}
+	pt.staged = pt.committed
+	pt.clearStaging()
+	pt.s.recCache.dropPartition(pt.p)
+	pt.s.winCache.dropPartition(pt.p)
+}
+
+func (pt *Partition) clearStaging() {
+	clear(pt.recs)
+	clear(pt.wins)
+	clear(pt.hist)
+	pt.hist = pt.hist[:0]
+	pt.pending = 0
+	pt.outboxN = 0
+}
+
+// Release drops the uncommitted staging and the partition's cache entries,
+// and ends the handle (revocation). It is cheap and never fails; the
+// partition can be taken again with Store.Partition.
+func (pt *Partition) Release() {
+	if pt.released {
+		return
+	}
+	pt.released = true
+	if pt.batch != nil {
+		pt.batch.Close()
+		pt.batch = nil
+	}
+	pt.staged = pt.committed
+	pt.clearStaging()
+	pt.s.recCache.dropPartition(pt.p)
+	pt.s.winCache.dropPartition(pt.p)
+	pt.slot.mu.Lock()
+	if pt.slot.handle == pt {
+		pt.slot.handle = nil
+	}
+	pt.slot.mu.Unlock()
+}

@@ -1,0 +1,524 @@
+package stream
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"slices"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"github.com/rs/zerolog"
+	"github.com/segmentio/kafka-go"
+
+	"github.com/attain-dev/attain/state"
+)
+
+// ProcessorOptions configure the consumer of the answers topic.
+type ProcessorOptions struct {
+	Brokers []string
+	Group   string
+	Topic   string
+	// Start is where a partition with no stored offset begins: "earliest"
+	// (default) or "latest".
+	Start string
+	// MaxEventBytes rejects larger input values (0: no limit).
+	MaxEventBytes int
+	// BatchInterval and BatchMaxAnswers bound a micro-batch: it is committed
+	// once BatchInterval has passed since its first message or once it
+	// holds BatchMaxAnswers messages, whichever comes first. Defaults
+	// 100 ms and 2000 (ARCHITECTURE.md, Durability).
+	BatchInterval   time.Duration
+	BatchMaxAnswers int
+	// Decoder decodes input values. Default &state.NativeDecoder{}.
+	Decoder Decoder
+	// SessionTimeout, HeartbeatInterval and RebalanceTimeout are the
+	// consumer-group timings. Defaults 10 s, 1 s and 30 s: the Java
+	// client's session.timeout.ms default before Kafka 3.0, heartbeats at
+	// a tenth of it, and kafka-go's rebalance timeout (common practice).
+	SessionTimeout, HeartbeatInterval, RebalanceTimeout time.Duration
+	// DrainTimeout bounds the last outbox drain of a partition on shutdown.
+	// Default 5 s.
+	DrainTimeout time.Duration
+	// GroupCommitInterval spaces the Kafka group-offset commits of a
+	// partition (they serve lag monitoring only). Default 1 s.
+	GroupCommitInterval time.Duration
+	Logger              zerolog.Logger
+}
+
+// Processor consumes the answers topic as a member of a consumer group:
+// one goroutine per assigned partition, each resuming from the offset the
+// store holds for that partition, applying answers in micro-batches, and
+// publishing each committed batch's outbox.
+type Processor struct {
+	st  *state.Store
+	reg *state.Registry
+	pub *Publisher
+	m   *Metrics
+	opt ProcessorOptions
+	log zerolog.Logger
+	tr  *kafka.Transport
+	cl  *kafka.Client
+
+	skipped atomic.Int64
+}
+
+// NewProcessor returns a processor; Run runs it.
+func NewProcessor(st *state.Store, reg *state.Registry, pub *Publisher, m *Metrics, opt ProcessorOptions) (*Processor, error) {
+	switch opt.Start {
+	case "":
+		opt.Start = "earliest"
+	case "earliest", "latest":
+	default:
+		return nil, fmt.Errorf("%w: consumer.start = %q: must be earliest or latest", ErrConfig, opt.Start)
+	}
+	if len(opt.Brokers) == 0 || opt.Group == "" || opt.Topic == "" {
+		return nil, fmt.Errorf("%w: brokers, consumer group and answers topic are required", ErrConfig)
+	}
+	if opt.BatchInterval <= 0 {
+		opt.BatchInterval = 100 * time.Millisecond
+	}
+	if opt.BatchMaxAnswers <= 0 {
+		opt.BatchMaxAnswers = 2000
+	}
+	if opt.Decoder == nil {
+		opt.Decoder = &state.NativeDecoder{}
+	}
+	if opt.SessionTimeout <= 0 {
+		opt.SessionTimeout = 10 * time.Second
+	}
+	if opt.HeartbeatInterval <= 0 {
+		opt.HeartbeatInterval = opt.SessionTimeout / 10
+	}
+	if opt.RebalanceTimeout <= 0 {
+		opt.RebalanceTimeout = 30 * time.Second
+	}
+	if opt.DrainTimeout <= 0 {
+		opt.DrainTimeout = 5 * time.Second
+	}
+	if opt.GroupCommitInterval <= 0 {
+		opt.GroupCommitInterval = time.Second
+	}
+	tr := &kafka.Transport{}
+	return &Processor{
+		st: st, reg: reg, pub: pub, m: m, opt: opt,
+		log: opt.Logger.With().Str("component", "consumer").Str("group", opt.Group).Str("topic", opt.Topic).Logger(),
+		tr:  tr,
+		cl:  &kafka.Client{Addr: kafka.TCP(opt.Brokers...), Transport: tr, Timeout: 10 * time.Second},
+	}, nil
+}
+
+// Skipped counts input offsets that were never read because they had been
+// deleted from the log (retention) before this instance consumed them.
+func (pr *Processor) Skipped() int64 { return pr.skipped.Load() }
+
+// Run joins the consumer group and processes until ctx ends or a partition
+// fails in a way that retrying cannot fix (the store failing). On the way
+// out every partition commits its batch in hand (synced), drains its
+// outbox once more within DrainTimeout, and the member leaves the group.
+// Run returns nil after a shutdown asked for by ctx.
+func (pr *Processor) Run(ctx context.Context) error {
+	defer pr.tr.CloseIdleConnections()
+	cg, err := kafka.NewConsumerGroup(kafka.ConsumerGroupConfig{
+		ID:                    pr.opt.Group,
+		Brokers:               pr.opt.Brokers,
+		Topics:                []string{pr.opt.Topic},
+		GroupBalancers:        []kafka.GroupBalancer{kafka.RangeGroupBalancer{}, kafka.RoundRobinGroupBalancer{}},
+		SessionTimeout:        pr.opt.SessionTimeout,
+		HeartbeatInterval:     pr.opt.HeartbeatInterval,
+		RebalanceTimeout:      pr.opt.RebalanceTimeout,
+		JoinGroupBackoff:      time.Second,
+		WatchPartitionChanges: true,
+		Logger:                kafka.LoggerFunc(func(f string, a ...any) { pr.log.Debug().Msgf(f, a...) }),
+		ErrorLogger:           kafka.LoggerFunc(func(f string, a ...any) { pr.log.Warn().Msgf(f, a...) }),
+	})
+	if err != nil {
+		return fmt.Errorf("%w: consumer group: %v", ErrConfig, err)
+	}
+
+	run, fail := context.WithCancelCause(ctx)
+	defer fail(nil)
+	var current *sync.WaitGroup // partitions of the current generation still doing work
+	for {
+		gen, err := cg.Next(run)
+		if run.Err() != nil {
+			break
+		}
+		if err != nil {
+			if errors.Is(err, kafka.ErrGroupClosed) {
+				break
+			}
+			pr.log.Warn().Err(err).Msg("joining the consumer group failed; retrying")
+			continue
+		}
+		var ids []int32
+		for _, a := range gen.Assignments[pr.opt.Topic] {
+			ids = append(ids, int32(a.ID))
+		}
+		slices.Sort(ids)
+		pr.m.SetAssigned(ids)
+		pr.log.Info().Int32("generation", gen.ID).Str("member", gen.MemberID).Ints32("partitions", ids).Msg("assigned partitions")
+		wg := &sync.WaitGroup{}
+		current = wg
+		for _, p := range ids {
+			wg.Add(1)
+			gen.Start(func(fence context.Context) {
+				done := sync.OnceFunc(wg.Done)
+				defer done()
+				if err := pr.partition(run, fence, gen, p); err != nil {
+					pr.log.Error().Err(err).Int32("partition", p).Msg("partition failed; stopping")
+					fail(err)
+				}
+				if run.Err() != nil {
+					// Shutting down: the work is done, but the generation
+					// must outlive the other partitions' last drains (the
+					// first function to return would end it), so wait for
+					// the group to be closed.
+					done()
+					<-fence.Done()
+				}
+			})
+		}
+	}
+	if current != nil {
+		current.Wait()
+	}
+	cg.Close() // ends the generation, leaves the group
+	if err := context.Cause(run); err != nil && !errors.Is(err, context.Canceled) {
+		return err
+	}
+	return nil
+}
+
+// partition processes one assigned partition until shutdown (run ends) or
+// revocation (fence ends). A returned error is fatal for the processor.
+func (pr *Processor) partition(run, fence context.Context, gen *kafka.Generation, p int32) error {
+	if run.Err() != nil || fence.Err() != nil {
+		return nil
+	}
+	log := pr.log.With().Int32("partition", p).Int32("generation", gen.ID).Logger()
+	pt, err := pr.st.Partition(p)
+	if err != nil {
+		return fmt.Errorf("attain: opening partition %d of the store: %w", p, err)
+	}
+	defer pt.Release()
+
+	stop, cancel := context.WithCancel(run)
+	defer cancel()
+	defer context.AfterFunc(fence, cancel)()
+
+	r := &partitionRun{pr: pr, p: p, pt: pt, gen: gen, fence: fence, stop: stop, log: log}
+
+	// Outputs committed by an earlier owner (or before a crash) go out
+	// before anything new is consumed.
+	r.dirty = true
+	r.drain(stop)
+
+	next, err := r.resume(stop)
+	if err != nil {
+		if stop.Err() != nil {
+			return nil
+		}
+		// Not fatal: ending this partition ends the generation, and the
+		// group is joined again after a backoff.
+		log.Warn().Err(err).Msg("cannot resume the partition; rejoining the group")
+		return nil
+	}
+	r.next = next
+	r.reader = kafka.NewReader(kafka.ReaderConfig{
+		Brokers: pr.opt.Brokers, Topic: pr.opt.Topic, Partition: int(p),
+		MinBytes: 1,
+		// Large enough for any message the broker accepts (Kafka's
+		// default message.max.bytes is 1 MiB), so that an oversized event
+		// is read and dead-lettered instead of blocking the partition.
+		MaxBytes:      8 << 20,
+		MaxWait:       500 * time.Millisecond,
+		QueueCapacity: 1000,
+		ErrorLogger:   kafka.LoggerFunc(func(f string, a ...any) { log.Warn().Msgf(f, a...) }),
+	})
+	defer r.reader.Close()
+	if err := r.reader.SetOffset(next); err != nil {
+		return fmt.Errorf("attain: seeking partition %d to %d: %w", p, next, err)
+	}
+	pr.m.SetResumed(p)
+	log.Info().Int64("offset", next).Msg("consuming")
+
+	err = r.loop(stop)
+	if err == nil {
+		err = r.finish()
+	}
+	if errors.Is(err, state.ErrPartitionReleased) {
+		// Another handle took the partition: this one is fenced and its
+		// staging is gone; the next generation resumes from the store.
+		log.Warn().Err(err).Msg("partition handle fenced; rejoining the group")
+		return nil
+	}
+	return err
+}
+
+// partitionRun is the state of one partition's goroutine.
+type partitionRun struct {
+	pr     *Processor
+	p      int32
+	pt     *state.Partition
+	gen    *kafka.Generation
+	fence  context.Context
+	log    zerolog.Logger
+	reader *kafka.Reader
+
+	next int64 // offset after the last message staged
+	hwm  int64 // high watermark seen with the last message
+
+	opened time.Time // first message of the batch in hand; zero when none
+
+	dirty      bool          // the outbox may hold entries not yet published
+	retryAt    time.Time     // earliest time of the next drain after a failure
+	backoff    time.Duration // after the last failed drain
+	lastGroup  time.Time     // last Kafka group-offset commit
+	groupSent  int64         // offset last committed to the group
+	window     context.Context
+	cancelWin  context.CancelFunc
+	windowDue  time.Time
+	staged     int // messages staged in the batch in hand
+	stop       context.Context
+}
+
+// resume returns the offset to start reading from: the store's next
+// offset, or the configured start when none is stored, moved forward (and
+// logged, and counted) when the log no longer holds it.
+func (r *partitionRun) resume(ctx context.Context) (int64, error) {
+	first, last, err := partitionBounds(ctx, r.pr.cl, r.pr.opt.Topic, int(r.p))
+	if err != nil {
+		return 0, err
+	}
+	next, ok := r.pt.NextOffset()
+	switch {
+	case !ok && r.pr.opt.Start == "latest":
+		r.log.Info().Int64("offset", last).Msg("no stored offset: starting at the end of the log (consumer.start = latest)")
+		return last, nil
+	case !ok:
+		r.log.Info().Int64("offset", first).Msg("no stored offset: starting at the beginning of the log (consumer.start = earliest)")
+		return first, nil
+	case next < first:
+		skipped := first - next
+		r.pr.skipped.Add(skipped)
+		r.log.Error().Int64("stored_next", next).Int64("log_start", first).Int64("skipped", skipped).
+			Msg("ANSWERS LOST: the stored offset is below the start of the log — those messages were deleted (retention) before this instance read them; continuing from the log start. Raise the answers topic's retention or consume faster")
+		return first, nil
+	case next > last:
+		r.log.Error().Int64("stored_next", next).Int64("log_end", last).
+			Msg("the stored offset is beyond the end of the log: the topic was probably deleted and created again; answers at offsets below the stored one will be ignored until the partition's state is erased")
+	}
+	return next, nil
+}
+
+// loop reads, decodes and stages messages, committing the batch in hand
+// at least every BatchInterval and every BatchMaxAnswers messages, until
+// stop ends.
+func (r *partitionRun) loop(stop context.Context) error {
+	defer r.closeWindow()
+	opt := &r.pr.opt
+	for {
+		ctx := stop
+		if r.window != nil {
+			ctx = r.window
+		}
+		msg, err := r.reader.FetchMessage(ctx)
+		if err != nil {
+			if stop.Err() != nil {
+				return nil
+			}
+			if r.window != nil && r.window.Err() != nil {
+				if err := r.tick(time.Now()); err != nil {
+					return err
+				}
+				continue
+			}
+			// A reader error that is not a timeout: end the generation and
+			// rejoin rather than spin.
+			r.log.Warn().Err(err).Msg("reading the partition failed; rejoining the group")
+			return nil
+		}
+		if err := r.handle(&msg); err != nil {
+			return err
+		}
+		now := time.Now()
+		if r.staged >= opt.BatchMaxAnswers || now.Sub(r.opened) >= opt.BatchInterval {
+			if err := r.commit(false, now); err != nil {
+				return err
+			}
+			r.publish(now)
+		}
+	}
+}
+
+// handle stages one message: applied, or dead-lettered with its reason.
+func (r *partitionRun) handle(msg *kafka.Message) error {
+	pr := r.pr
+	pr.m.Consumed.Add(1)
+	if msg.HighWaterMark > r.hwm {
+		r.hwm = msg.HighWaterMark
+	}
+	a, rej := decodeMessage(pr.opt.Decoder, msg.Value, pr.opt.MaxEventBytes)
+	if rej == nil {
+		res, err := r.pt.Apply(a, msg.Offset, pr.reg.Current())
+		switch {
+		case err == nil && res.Replayed:
+		case err == nil:
+			if res.Duplicate {
+				pr.m.Duplicates.Add(1)
+			} else {
+				pr.m.Applied.Add(1)
+			}
+			if res.Late {
+				pr.m.Late.Add(1)
+			}
+			if res.Rederived > 0 {
+				pr.m.Rederived.Add(int64(res.Rederived))
+			}
+			if len(res.Outputs) > 0 {
+				r.dirty = true
+			}
+		case errors.Is(err, state.ErrBadAnswer):
+			rej = rejectionOf(err, ReasonUnprocessed, ReasonUnprocessed)
+		default:
+			return fmt.Errorf("attain: applying %s/%d@%d: %w", msg.Topic, msg.Partition, msg.Offset, err)
+		}
+	}
+	if rej != nil {
+		dl := state.DeadLetter{
+			Raw: msg.Value, Key: msg.Key, Topic: msg.Topic, Partition: int32(msg.Partition), Offset: msg.Offset,
+			Reason: rej.reason(), Field: rej.field, At: msg.Time,
+		}
+		if err := r.pt.DeadLetter(dl, msg.Offset); err != nil {
+			return fmt.Errorf("attain: dead-lettering %s/%d@%d: %w", msg.Topic, msg.Partition, msg.Offset, err)
+		}
+		pr.m.DeadLettered.Add(1)
+		r.dirty = true
+		r.log.Warn().Int64("offset", msg.Offset).Str("reason", dl.Reason).Str("field", dl.Field).Msg("input rejected to the dead-letter topic")
+	}
+	r.next = msg.Offset + 1
+	if r.staged == 0 {
+		r.opened = time.Now()
+		r.openWindow(r.opened.Add(pr.opt.BatchInterval))
+	}
+	r.staged++
+	return nil
+}
+
+// openWindow makes the next fetches return by due (a commit or a retry is
+// owed then). One context serves a whole batch, not one per message.
+func (r *partitionRun) openWindow(due time.Time) {
+	if r.window != nil && !due.Before(r.windowDue) {
+		return
+	}
+	r.closeWindow()
+	r.window, r.cancelWin = context.WithDeadline(r.stop, due)
+	r.windowDue = due
+}
+
+func (r *partitionRun) closeWindow() {
+	if r.cancelWin != nil {
+		r.cancelWin()
+	}
+	r.window, r.cancelWin = nil, nil
+}
+
+// tick runs when the window ends: commit what is staged and retry a
+// failed drain that is due.
+func (r *partitionRun) tick(now time.Time) error {
+	r.closeWindow()
+	if r.staged > 0 {
+		if err := r.commit(false, now); err != nil {
+			return err
+		}
+	}
+	r.publish(now)
+	return nil
+}
+
+// publish drains the outbox when it may hold entries and no failed drain
+// is waiting for its retry time; a pending retry keeps a window open so
+// that it happens even when no message arrives.
+func (r *partitionRun) publish(now time.Time) {
+	if r.dirty && !now.Before(r.retryAt) {
+		r.drain(r.fence)
+	}
+	if r.dirty {
+		r.openWindow(r.retryAt)
+	}
+}
+
+// commit writes the batch in hand to the store as one atomic batch, then
+// (fenced) reports the offset to the group.
+func (r *partitionRun) commit(sync bool, now time.Time) error {
+	pr := r.pr
+	r.closeWindow()
+	if r.staged > 0 || sync {
+		t0 := time.Now()
+		if err := r.pt.Commit(sync); err != nil {
+			return fmt.Errorf("attain: committing partition %d: %w", r.p, err)
+		}
+		pr.m.ObserveCommit(time.Since(t0))
+		pr.m.Commits.Add(1)
+		r.staged = 0
+		r.opened = time.Time{}
+		if r.hwm > 0 {
+			pr.m.SetLag(r.p, max(0, r.hwm-r.next))
+		}
+	}
+	if r.fence.Err() == nil && r.next != r.groupSent && (sync || now.Sub(r.lastGroup) >= pr.opt.GroupCommitInterval) {
+		// The group offset serves lag monitoring only; the store's offset
+		// is the one that counts, so a failure is not an error.
+		if err := r.gen.CommitOffsets(map[string]map[int]int64{pr.opt.Topic: {int(r.p): r.next}}); err != nil {
+			r.log.Debug().Err(err).Msg("committing the group offset failed")
+		} else {
+			r.groupSent = r.next
+		}
+		r.lastGroup = now
+	}
+	return nil
+}
+
+// drain publishes the partition's outbox; a failure is retried later with
+// a growing backoff while consumption goes on, so a slow or unreachable
+// output topic never stalls the partition (the outbox holds the entries).
+func (r *partitionRun) drain(fence context.Context) {
+	n, err := r.pr.pub.Drain(fence, r.p)
+	switch {
+	case err == nil:
+		r.dirty = false
+		r.backoff = 0
+		if n > 0 {
+			r.log.Debug().Int("entries", n).Msg("published outbox")
+		}
+	case errors.Is(err, ErrFenced):
+		// The generation ended; the next owner publishes the rest.
+	default:
+		r.backoff = min(max(2*r.backoff, 250*time.Millisecond), 30*time.Second)
+		r.retryAt = time.Now().Add(r.backoff)
+		r.log.Warn().Err(err).Int("sent", n).Dur("retry_in", r.backoff).Msg("publishing the outbox failed; entries are kept and sent again")
+	}
+}
+
+// finish ends the partition: the batch in hand is committed and synced;
+// while the generation still owns the partition (shutdown, not
+// revocation), the outbox is drained once more within DrainTimeout and
+// the group offset is reported.
+func (r *partitionRun) finish() error {
+	if err := r.commit(true, time.Now()); err != nil {
+		return err
+	}
+	if r.fence.Err() != nil {
+		r.log.Info().Int64("offset", r.next).Msg("partition revoked")
+		return nil
+	}
+	if r.dirty {
+		ctx, cancel := context.WithTimeout(r.fence, r.pr.opt.DrainTimeout)
+		r.drain(ctx)
+		cancel()
+	}
+	r.log.Info().Int64("offset", r.next).Msg("partition stopped")
+	return nil
+}
