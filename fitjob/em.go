@@ -15,6 +15,9 @@ var ErrFitOptions = errors.New("attain: invalid fit options")
 // ErrEmptyData rejects a fit with no answers.
 var ErrEmptyData = errors.New("attain: no answers to fit")
 
+// ErrBadData rejects a Data whose Ends do not describe its Obs.
+var ErrBadData = errors.New("attain: malformed fit data")
+
 // ErrZeroLikelihood rejects a fit where every start gives the data
 // probability zero (possible only with bounds that allow a guess or slip of
 // exactly 0 or a prior of exactly 0 or 1).
@@ -31,12 +34,14 @@ const boundEps = 1e-6
 
 // DefaultBounds forbids degenerate models: guess and slip stay below 0.5, so
 // that P(correct | mastered) = 1−slip > 0.5 > guess = P(correct | not
-// mastered). Without such a bound the likelihood cannot tell "mastered
-// learners answer well" from its mirror image (the two states swapped), and
-// EM readily lands on models in which mastery lowers the chance of a correct
-// answer; the BKT literature calls these degenerate models and bounds guess
-// and slip for this reason (Beck & Chang 2007 on identifiability; Baker,
-// Corbett & Aleven 2008 on degenerate guess and slip; from memory).
+// mastered). Without such a bound the labels of the two states are not
+// pinned down by the data: with forget fitted, swapping them (prior ↔
+// 1−prior, learn ↔ forget, guess ↔ 1−slip) gives exactly the same
+// likelihood, and even without forget EM readily lands on models in which
+// mastery lowers the chance of a correct answer. The BKT literature calls
+// these degenerate models and bounds guess and slip for this reason (Beck &
+// Chang 2007 on identifiability; Baker, Corbett & Aleven 2008 on degenerate
+// guess and slip; from memory).
 func DefaultBounds() Bounds {
 	return Bounds{
 		Lo: state.Params{Prior: boundEps, Learn: 0, Guess: boundEps, Slip: boundEps, Forget: 0},
@@ -45,6 +50,8 @@ func DefaultBounds() Bounds {
 }
 
 // Beta is a Beta(A, B) prior on one parameter; the zero value means none.
+// A MAP fit needs A, B ≥ 1 (Beta(1, 1) is flat); Beta(A, B) adds A−1
+// pseudo-successes and B−1 pseudo-failures to the expected counts.
 type Beta struct{ A, B float64 }
 
 // Priors are optional Beta priors; with any set, Fit maximises the
@@ -82,7 +89,7 @@ type Result struct {
 	Params     state.Params
 	LogLik     float64 // log-likelihood of Params (natural log), without the prior density
 	Iterations int     // EM updates applied to reach Params from its start
-	Converged  bool    // the relative change of the objective fell below Tol
+	Converged  bool    // the last update changed the objective by less than Tol (relative); also reported with FixedIter
 	Warnings   []string
 }
 
@@ -134,12 +141,12 @@ func checkData(d *Data) error {
 	for i, end := range d.Ends {
 		if end < prev || end > len(d.Obs) {
 			return fmt.Errorf("%w: Data.Ends[%d] = %d: must be nondecreasing and at most len(Obs) = %d; build Data with Add",
-				ErrFitOptions, i, end, len(d.Obs))
+				ErrBadData, i, end, len(d.Obs))
 		}
 		prev = end
 	}
 	if prev != len(d.Obs) {
-		return fmt.Errorf("%w: Data.Ends ends at %d but len(Obs) = %d; build Data with Add", ErrFitOptions, prev, len(d.Obs))
+		return fmt.Errorf("%w: Data.Ends ends at %d but len(Obs) = %d; build Data with Add", ErrBadData, prev, len(d.Obs))
 	}
 	return nil
 }
@@ -180,8 +187,10 @@ func (opt Options) normalised() (options, error) {
 		if b == (Beta{}) {
 			continue
 		}
-		if !(b.A > 0) || !(b.B > 0) || math.IsInf(b.A, 0) || math.IsInf(b.B, 0) {
-			bad("Priors."+name, b, "A and B must both be positive and finite (or both 0 for no prior)")
+		if !(b.A >= 1) || !(b.B >= 1) || math.IsInf(b.A, 0) || math.IsInf(b.B, 0) {
+			// Below 1 the density is unbounded at 0 or 1 and the
+			// posterior has no maximum inside the bounds.
+			bad("Priors."+name, b, "A and B must both be finite and at least 1 for a MAP fit (or both 0 for no prior)")
 			continue
 		}
 		if name == "Forget" && !o.FitForget {

@@ -9,6 +9,7 @@ import (
 	"math/rand/v2"
 	"os"
 	"path/filepath"
+	"strings"
 	"sync"
 	"testing"
 
@@ -398,7 +399,12 @@ func TestEMLongAndDegenerateSequences(t *testing.T) {
 
 	// 10,000 answers against the forward recursion in 256-bit floating
 	// point (math/big: no underflow, no rounding that matters).
-	for _, pc := range []float64{0, 0.5, 0.9, 1} {
+	withForget := state.Params{Prior: 0.3, Learn: 0.1, Guess: 0.2, Slip: 0.1, Forget: 0.02}
+	for i, pc := range []float64{0, 0.5, 0.9, 1, 0.5, 0.8} {
+		p := p
+		if i >= 4 {
+			p = withForget
+		}
 		seq := emRandSeq(rng, 10_000, pc)
 		want, wantF := emBigForward(seq, p)
 		gotF := Filter(seq, p)
@@ -429,14 +435,14 @@ func TestEMLongAndDegenerateSequences(t *testing.T) {
 		if len(sc.marks) == 0 {
 			t.Fatalf("10,000 answers (P(correct) %.1f): the forward pass never rescaled", pc)
 		}
-		for _, x := range [][3]any{{"first", c.first, g.first}, {"xNM", c.xNM, g.xNM}, {"gNt", c.gNt, g.gNt},
+		for _, x := range [][3]any{{"first", c.first, g.first}, {"xNM", c.xNM, g.xNM}, {"xMN", c.xMN, g.xMN}, {"gNt", c.gNt, g.gNt},
 			{"gMt", c.gMt, g.gMt}, {"gN", c.gN, g.gN}, {"gM", c.gM, g.gM}, {"gNc", c.gNc, g.gNc}, {"gMw", c.gMw, g.gMw}} {
 			got, want := x[1].(float64), x[2].(float64)
 			if !(emRelErr(got, want) <= 1e-9 || math.Abs(got-want) <= 1e-12) {
 				t.Errorf("10,000 answers (P(correct) %.1f): %s = %.15g fast, %.15g guarded", pc, x[0], got, want)
 			}
 		}
-		r, err := Fit(d, Options{})
+		r, err := Fit(d, Options{FitForget: p.Forget > 0})
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -451,6 +457,7 @@ func TestEMLongAndDegenerateSequences(t *testing.T) {
 		"all wrong":   emSim(rng, state.Params{Prior: 0, Learn: 0, Guess: 0}, 50, 20),
 		"length 1":    emSim(rng, p, 300, 1),
 		"one answer":  {Obs: []bool{true}, Ends: []int{1}},
+		"empty ones":  {Obs: []bool{true, false, true}, Ends: []int{0, 2, 2, 3}}, // built by hand, not by Add
 	} {
 		for _, forget := range []bool{false, true} {
 			r, err := Fit(d, Options{FitForget: forget})
@@ -503,7 +510,7 @@ func TestEMMonotone(t *testing.T) {
 			t.Fatal(err)
 		}
 		if i%4 == 1 {
-			o.Priors = Priors{Learn: Beta{2, 5}, Slip: Beta{1.5, 8}, Guess: Beta{0.8, 3}}
+			o.Priors = Priors{Learn: Beta{2, 5}, Slip: Beta{1.5, 8}, Guess: Beta{1.2, 3}}
 			o.hasPrior = true
 		}
 		p := o.starts()[1+i%o.Starts]
@@ -658,12 +665,12 @@ func TestEMFitErrors(t *testing.T) {
 	if _, err := Fit(nil, Options{}); !errors.Is(err, ErrEmptyData) {
 		t.Errorf("nil data: %v", err)
 	}
-	if _, err := Fit(&Data{Obs: []bool{true, true}, Ends: []int{1}}, Options{}); !errors.Is(err, ErrFitOptions) {
+	if _, err := Fit(&Data{Obs: []bool{true, true}, Ends: []int{1}}, Options{}); !errors.Is(err, ErrBadData) {
 		t.Errorf("bad Ends: %v", err)
 	}
 	for _, o := range []Options{
 		{MaxIter: -1}, {Starts: -2}, {Tol: -1}, {Tol: math.NaN()},
-		{Priors: Priors{Learn: Beta{A: 0, B: 3}}},
+		{Priors: Priors{Learn: Beta{A: 0, B: 3}}}, {Priors: Priors{Slip: Beta{A: 0.5, B: 3}}},
 		{Bounds: Bounds{Lo: state.Params{Guess: 0.6}, Hi: state.Params{Guess: 0.5}}},
 		{Init: &state.Params{Prior: 0.3, Learn: 0.1, Guess: 0.7, Slip: 0.1}},
 		{Init: &state.Params{Prior: 0.3, Learn: 0.1, Guess: 0.2, Slip: 0.1, Forget: 0.1}},
@@ -690,11 +697,18 @@ func TestEMPlausibilityWarning(t *testing.T) {
 	// The inequality is exactly "a wrong answer at the prior lowers the
 	// estimate" when forget is 0 (derivation beside plausibilityLevel).
 	rng := rand.New(rand.NewPCG(50, 51))
+	flagged := 0
 	for range 10_000 {
 		p := emRandParams(rng, false)
 		if (p.Step(p.Prior, false) > p.Prior) != implausible(p) && math.Abs(plausibilityLevel(p)-p.Prior) > 1e-12 {
 			t.Fatalf("%v: Step %v vs level %v", p, p.Step(p.Prior, false), plausibilityLevel(p))
 		}
+		if implausible(p) {
+			flagged++
+		}
+	}
+	if flagged < 500 || flagged > 9500 {
+		t.Errorf("only %d of 10,000 random sets flagged: the check above compared too few of each kind", flagged)
 	}
 	// A fit of data generated from the implausible set warns.
 	d := emSim(rng, bad, 2000, 20)
@@ -704,7 +718,7 @@ func TestEMPlausibilityWarning(t *testing.T) {
 	}
 	found := false
 	for _, w := range r.Warnings {
-		found = found || len(w) > 12 && w[:12] == "implausible:"
+		found = found || strings.HasPrefix(w, "implausible:")
 	}
 	if !found {
 		t.Errorf("no plausibility warning for %v: %q", r.Params, r.Warnings)
