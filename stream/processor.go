@@ -226,6 +226,7 @@ func (pr *Processor) partition(run, fence context.Context, gen *kafka.Generation
 		return nil
 	}
 	r.next = next
+	pr.m.SetLag(p, max(0, r.logEnd-next))
 	r.reader = kafka.NewReader(kafka.ReaderConfig{
 		Brokers: pr.opt.Brokers, Topic: pr.opt.Topic, Partition: int(p),
 		MinBytes: 1,
@@ -267,21 +268,22 @@ type partitionRun struct {
 	log    zerolog.Logger
 	reader *kafka.Reader
 
-	next int64 // offset after the last message staged
-	hwm  int64 // high watermark seen with the last message
+	next   int64 // offset after the last message staged
+	hwm    int64 // high watermark seen with the last message
+	logEnd int64 // end of the log at assignment
 
 	opened time.Time // first message of the batch in hand; zero when none
 
-	dirty      bool          // the outbox may hold entries not yet published
-	retryAt    time.Time     // earliest time of the next drain after a failure
-	backoff    time.Duration // after the last failed drain
-	lastGroup  time.Time     // last Kafka group-offset commit
-	groupSent  int64         // offset last committed to the group
-	window     context.Context
-	cancelWin  context.CancelFunc
-	windowDue  time.Time
-	staged     int // messages staged in the batch in hand
-	stop       context.Context
+	dirty     bool          // the outbox may hold entries not yet published
+	retryAt   time.Time     // earliest time of the next drain after a failure
+	backoff   time.Duration // after the last failed drain
+	lastGroup time.Time     // last Kafka group-offset commit
+	groupSent int64         // offset last committed to the group
+	window    context.Context
+	cancelWin context.CancelFunc
+	windowDue time.Time
+	staged    int // messages staged in the batch in hand
+	stop      context.Context
 }
 
 // resume returns the offset to start reading from: the store's next
@@ -292,6 +294,7 @@ func (r *partitionRun) resume(ctx context.Context) (int64, error) {
 	if err != nil {
 		return 0, err
 	}
+	r.logEnd = last
 	next, ok := r.pt.NextOffset()
 	switch {
 	case !ok && r.pr.opt.Start == "latest":
@@ -443,7 +446,9 @@ func (r *partitionRun) tick(now time.Time) error {
 // that it happens even when no message arrives.
 func (r *partitionRun) publish(now time.Time) {
 	if r.dirty && !now.Before(r.retryAt) {
-		r.drain(r.fence)
+		// stop, not just the fence: a shutdown abandons a slow write here,
+		// and finish drains again within DrainTimeout.
+		r.drain(r.stop)
 	}
 	if r.dirty {
 		r.openWindow(r.retryAt)
@@ -455,7 +460,7 @@ func (r *partitionRun) publish(now time.Time) {
 func (r *partitionRun) commit(sync bool, now time.Time) error {
 	pr := r.pr
 	r.closeWindow()
-	if r.staged > 0 || sync {
+	if r.staged > 0 {
 		t0 := time.Now()
 		if err := r.pt.Commit(sync); err != nil {
 			return fmt.Errorf("attain: committing partition %d: %w", r.p, err)

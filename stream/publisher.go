@@ -100,10 +100,10 @@ func NewPublisher(st *state.Store, m *Metrics, opt PublisherOptions) (*Publisher
 }
 
 // Drain sends partition p's committed outbox entries, in order, until the
-// outbox of p is empty. fence is the owning generation's context: it is
-// checked before every write, and a write in flight is abandoned when it
-// ends (ErrFenced; the entries stay in the outbox). It returns the number
-// of entries acknowledged and deleted.
+// outbox of p is empty. fence is the owning generation's context, or one
+// that ends no later than it: it is checked before every write, and a
+// write in flight is abandoned when it ends (ErrFenced; the entries stay in
+// the outbox). It returns the number of entries acknowledged and deleted.
 func (pb *Publisher) Drain(fence context.Context, p int32) (int, error) {
 	sent := 0
 	for {

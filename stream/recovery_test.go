@@ -3,6 +3,7 @@ package stream
 import (
 	"context"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"testing"
 	"time"
@@ -246,4 +247,55 @@ func produceParams(t *testing.T, addr string, skills map[string]state.SkillParam
 		msgs = append(msgs, kafka.Message{Key: []byte(skill), Value: v})
 	}
 	produce(t, addr, tParams, msgs)
+}
+
+// TestDrainFenced: once the owning generation has ended, the publisher
+// sends nothing and leaves the outbox as it is.
+func TestDrainFenced(t *testing.T) {
+	b := startTestBroker(t, 1)
+	st := openTestStore(t, t.TempDir())
+	defer st.Close()
+	pt, err := st.Partition(0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	at := time.Date(2025, 3, 1, 18, 0, 0, 0, time.UTC)
+	for i := range 12 {
+		a := state.Answer{ID: fmt.Sprint(i), Learner: "learner-1", Skills: []string{"trial-balance"}, Correct: i%3 != 0, At: at.Add(time.Duration(i) * time.Minute)}
+		if _, err := pt.Apply(a, int64(i), state.NewParamFile()); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if err := pt.DeadLetter(state.DeadLetter{Raw: []byte("x"), Topic: tAnswers, Offset: 12, Reason: "malformed: x"}, 12); err != nil {
+		t.Fatal(err)
+	}
+	if err := pt.Commit(true); err != nil {
+		t.Fatal(err)
+	}
+	pt.Release()
+	depth := st.OutboxDepth()
+	if depth < 2 {
+		t.Fatalf("outbox depth %d; the test needs a stuck event and a dead letter", depth)
+	}
+	m := NewMetrics()
+	pub, err := NewPublisher(st, m, PublisherOptions{Brokers: []string{b.Addr()}, MasteryTopic: tMastery, DeadLetterTopic: tDeadLetter, Source: Source("attain"), Logger: testLogger(t)})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer pub.Close()
+	ended, cancel := context.WithCancel(context.Background())
+	cancel()
+	if n, err := pub.Drain(ended, 0); !errors.Is(err, ErrFenced) || n != 0 {
+		t.Errorf("Drain with an ended generation = %d, %v; want 0, ErrFenced", n, err)
+	}
+	if st.OutboxDepth() != depth || len(readAll(t, b.Addr(), tMastery)) != 0 || len(readAll(t, b.Addr(), tDeadLetter)) != 0 {
+		t.Fatal("a fenced drain changed the outbox or wrote to the topics")
+	}
+	n, err := pub.Drain(context.Background(), 0)
+	if err != nil || int64(n) != depth || st.OutboxDepth() != 0 {
+		t.Fatalf("Drain = %d, %v; outbox depth %d; want %d entries sent", n, err, st.OutboxDepth(), depth)
+	}
+	if got := int64(len(readAll(t, b.Addr(), tMastery)) + len(readAll(t, b.Addr(), tDeadLetter))); got != depth {
+		t.Errorf("%d messages on the topics, want %d", got, depth)
+	}
 }

@@ -310,7 +310,6 @@ func goroutineDump() string {
 	return string(buf[:runtime.Stack(buf, true)])
 }
 
-
 // logEnds returns the end offset of each partition of topic, by partition.
 func logEnds(t testing.TB, addr, topic string) map[int]int64 {
 	t.Helper()

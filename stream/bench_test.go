@@ -1,0 +1,133 @@
+package stream
+
+import (
+	"context"
+	"os"
+	"strconv"
+	"sync"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"github.com/segmentio/kafka-go"
+
+	"github.com/attain-dev/attain/state"
+)
+
+// BenchmarkThroughput fills a 4-partition answers topic with simulated
+// answers (ATTAIN_BENCH_ANSWERS, default 300000; 30000 with -short), then
+// measures, on the same topic in the same run:
+//
+//   - raw: kafka-go consumption alone, one group-less Reader per partition
+//     reading every message and doing nothing with it;
+//   - attain: the processor end to end — decode, BKT update, history,
+//     store commit every 100 ms or 2000 answers (Pebble WAL without
+//     fsync, as in production; fsync on shutdown), outbox publish to the
+//     mastery topic — until every answer is consumed and the processor has
+//     shut down (final synced commit and drain included).
+//
+// Both clocks start at the first message read, so that the consumer
+// group's join is not counted. It reports answers/s for both and their
+// ratio (target ≥ 0.5).
+func BenchmarkThroughput(b *testing.B) {
+	n := 300_000
+	if testing.Short() {
+		n = 30_000
+	}
+	if s := os.Getenv("ATTAIN_BENCH_ANSWERS"); s != "" {
+		v, err := strconv.Atoi(s)
+		if err != nil || v <= 0 {
+			b.Fatalf("ATTAIN_BENCH_ANSWERS=%q: must be a positive number", s)
+		}
+		n = v
+	}
+	const partitions = 4
+	br := startTestBroker(b, partitions)
+	answers := cohort(42, 5000, n)
+	t0 := time.Now()
+	produce(b, br.Addr(), tAnswers, answerMessages(answers))
+	b.Logf("filled %s with %d answers in %v", tAnswers, n, time.Since(t0).Round(time.Millisecond))
+
+	var raw, attain float64
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		raw = rawRate(b, br.Addr(), partitions, n)
+		attain = attainRate(b, br.Addr(), n, i)
+	}
+	b.ReportMetric(raw, "answers/s-raw")
+	b.ReportMetric(attain, "answers/s-attain")
+	b.ReportMetric(attain/raw, "ratio")
+}
+
+// rawRate reads the whole topic with one Reader per partition.
+func rawRate(b *testing.B, addr string, partitions, n int) float64 {
+	ends := logEnds(b, addr, tAnswers)
+	var first sync.Once
+	var start time.Time
+	var count atomic.Int64
+	var wg sync.WaitGroup
+	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
+	defer cancel()
+	for p := range partitions {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			r := kafka.NewReader(kafka.ReaderConfig{
+				Brokers: []string{addr}, Topic: tAnswers, Partition: p,
+				MinBytes: 1, MaxBytes: 8 << 20, MaxWait: 500 * time.Millisecond, QueueCapacity: 1000,
+			})
+			defer r.Close()
+			if err := r.SetOffset(0); err != nil {
+				b.Error(err)
+				return
+			}
+			for end := ends[p]; end > 0; {
+				m, err := r.FetchMessage(ctx)
+				if err != nil {
+					b.Error(err)
+					return
+				}
+				first.Do(func() { start = time.Now() })
+				count.Add(1)
+				if m.Offset+1 >= end {
+					return
+				}
+			}
+		}()
+	}
+	wg.Wait()
+	el := time.Since(start)
+	if int(count.Load()) != n {
+		b.Fatalf("raw read %d messages, want %d", count.Load(), n)
+	}
+	return float64(n) / el.Seconds()
+}
+
+// attainRate runs the processor over the whole topic with a new store and
+// a new consumer group.
+func attainRate(b *testing.B, addr string, n, iter int) float64 {
+	st := openTestStore(b, b.TempDir())
+	defer st.Close()
+	rp := startProcessor(b, addr, st, state.NewRegistry(nil), ProcessorOptions{Group: "bench-" + strconv.Itoa(iter)})
+	var start time.Time
+	deadline := time.Now().Add(5 * time.Minute)
+	for rp.m.Consumed.Load() < int64(n) {
+		if start.IsZero() && rp.m.Consumed.Load() > 0 {
+			start = time.Now()
+		}
+		if time.Now().After(deadline) {
+			b.Fatalf("attain consumed %d of %d in 5 minutes", rp.m.Consumed.Load(), n)
+		}
+		time.Sleep(time.Millisecond)
+	}
+	rp.stop(b)
+	el := time.Since(start)
+	if d := st.OutboxDepth(); d != 0 {
+		b.Fatalf("outbox holds %d entries after the final drain", d)
+	}
+	s := st.Stats()
+	b.Logf("attain: %d applied, %d duplicates, %d commits, %d published, cache hits %d misses %d",
+		rp.m.Applied.Load(), rp.m.Duplicates.Load(), rp.m.Commits.Load(),
+		rp.m.PublishedReached.Load()+rp.m.PublishedStuck.Load(), s.CacheHits, s.CacheMisses)
+	return float64(n) / el.Seconds()
+}
