@@ -143,6 +143,21 @@ func (s *Store) Partition(p int32) (*Partition, error) {
 	default:
 		return nil, fmt.Errorf("attain: partition %d: reading its state: %w", p, err)
 	}
+	// The next outbox number is stored with the offset; the largest stored
+	// entry is checked too, so a number is never reused even if the two
+	// disagreed.
+	it, err := s.db.NewIter(&pebble.IterOptions{LowerBound: familyPrefix(uint32(p), famOutbox), UpperBound: familyEnd(uint32(p), famOutbox)})
+	if err != nil {
+		return nil, fmt.Errorf("attain: partition %d: reading its outbox: %w", p, err)
+	}
+	if it.Last() && len(it.Key()) == partPrefixLen+8 {
+		if last := beUint64(it.Key()[partPrefixLen:]); last >= st.nextSeq {
+			st.nextSeq = last + 1
+		}
+	}
+	if err := errors.Join(it.Error(), it.Close()); err != nil {
+		return nil, fmt.Errorf("attain: partition %d: reading its outbox: %w", p, err)
+	}
 	if st.nextSeq == 0 {
 		st.nextSeq = 1
 	}

@@ -863,3 +863,120 @@ func TestBadOptionsAndAnswers(t *testing.T) {
 		t.Error("Partition(-1) accepted")
 	}
 }
+
+func TestConcurrentReadersWhilePartitionsCommit(t *testing.T) {
+	s := openTestStore(t, t.TempDir(), StoreOptions{CacheRecords: 100})
+	pf := NewParamFile()
+	as := answers(6, 4000, 30)
+	done := make(chan struct{})
+	stop := make(chan struct{})
+	errc := make(chan error, 3)
+	rerr := make(chan error, 1)
+	for g := 0; g < 2; g++ { // two partitions, one goroutine each
+		go func(p int32) {
+			pt, err := s.Partition(p)
+			if err != nil {
+				errc <- err
+				return
+			}
+			for i, a := range as {
+				a.Learner = fmt.Sprint(a.Learner, "-p", p)
+				if _, err := pt.Apply(a, int64(i), pf); err != nil {
+					errc <- err
+					return
+				}
+				if i%250 == 0 {
+					if err := pt.Commit(false); err != nil {
+						errc <- err
+						return
+					}
+				}
+			}
+			errc <- pt.Commit(false)
+		}(int32(g))
+	}
+	go func() { // a reader on every read API until the writers finish
+		defer close(done)
+		for {
+			if _, _, err := s.Learner("learner-001-p0"); err != nil {
+				rerr <- err
+				return
+			}
+			if err := s.ScanHistory(func(string, string, []HistoryEntry) error { return nil }); err != nil {
+				rerr <- err
+				return
+			}
+			if ents, err := s.Outbox(1, 0, 10); err != nil {
+				rerr <- err
+				return
+			} else if len(ents) > 0 {
+				if err := s.DeleteOutbox(1, []uint64{ents[0].Seq}); err != nil {
+					rerr <- err
+					return
+				}
+			}
+			_ = s.Stats()
+			select {
+			case <-stop:
+				return
+			case <-time.After(time.Millisecond):
+			}
+		}
+	}()
+	for i := 0; i < 2; i++ {
+		if err := <-errc; err != nil {
+			close(stop)
+			<-done
+			t.Fatal(err)
+		}
+	}
+	close(stop)
+	<-done
+	select {
+	case err := <-rerr:
+		t.Fatal(err)
+	default:
+	}
+	ents, _ := s.Outbox(1, 0, 0)
+	if s.OutboxDepth() != int64(len(ents)+mustOutboxLen(t, s, 0)) {
+		t.Errorf("depth %d, entries %d + %d", s.OutboxDepth(), len(ents), mustOutboxLen(t, s, 0))
+	}
+	if err := s.Close(); err != nil {
+		t.Fatal(err)
+	}
+	// After Close: clear errors, no panics.
+	if _, err := s.Partition(0); !errors.Is(err, ErrStoreClosed) {
+		t.Errorf("Partition after Close: %v", err)
+	}
+	if _, _, err := s.Learner("x"); !errors.Is(err, ErrStoreClosed) {
+		t.Errorf("Learner after Close: %v", err)
+	}
+	if err := s.ScanHistory(nil); !errors.Is(err, ErrStoreClosed) {
+		t.Errorf("ScanHistory after Close: %v", err)
+	}
+	if err := s.Close(); err != nil {
+		t.Errorf("second Close: %v", err)
+	}
+}
+
+func mustOutboxLen(t *testing.T, s *Store, p int32) int {
+	ents, err := s.Outbox(p, 0, 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return len(ents)
+}
+
+func TestReleaseAndCommitAfterClose(t *testing.T) {
+	s := openTestStore(t, t.TempDir(), StoreOptions{})
+	pt := mustPartition(t, s, 0)
+	if err := pt.Skip(1); err != nil {
+		t.Fatal(err)
+	}
+	s.Close()
+	if err := pt.Commit(true); !errors.Is(err, ErrStoreClosed) {
+		t.Fatalf("Commit after Close: %v", err)
+	}
+	pt.Release() // must not panic
+	pt.Release()
+}
