@@ -32,6 +32,24 @@ func BenchmarkParamsStep(b *testing.B) {
 	stepSink = pL[7]
 }
 
+// BenchmarkRecordApply is the whole per-record update the store makes for
+// one answer: prediction, StepPair (precision kept near 1), counts and the
+// reached/stuck decisions. Target: ≤ 10 ns/op.
+func BenchmarkRecordApply(b *testing.B) {
+	p := Params{Prior: 0.3, Learn: 0.1, Guess: 0.2, Slip: 0.1, Forget: 0.01}
+	pol := DefaultPolicy()
+	var rs [1024]Record
+	for i := range rs {
+		rs[i] = NewRecord(p, 1)
+	}
+	var sink float64
+	for i := 0; i < b.N; i++ {
+		out := rs[i&1023].Apply(p, i&3 != 0, int64(i), pol)
+		sink += out.PCorrect
+	}
+	stepSink = sink
+}
+
 // BenchmarkParamsStepChain is the latency of one update when each depends
 // on the previous one (one record answered over and over; re-derivation of
 // a history): the division in the evidence update is on the critical path.

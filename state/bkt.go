@@ -20,13 +20,12 @@ func (p Params) Predict(pL float64) float64 {
 
 // Posterior returns P(L | observation) from the prior-to-answer pL.
 func (p Params) Posterior(pL float64, correct bool) float64 {
-	var known, unknown float64
+	k, u := p.Slip, 1-p.Guess // P(obs | mastered), P(obs | not mastered)
 	if correct {
-		known, unknown = pL*(1-p.Slip), (1-pL)*p.Guess
-	} else {
-		known, unknown = pL*p.Slip, (1-pL)*(1-p.Guess)
+		k, u = 1-p.Slip, p.Guess
 	}
-	den := known + unknown
+	known := pL * k
+	den := known + (1-pL)*u
 	if !(den > 0) {
 		// The model gives this observation zero probability: it carries no
 		// usable evidence, so the estimate stays.
@@ -41,9 +40,44 @@ func (p Params) Transition(post float64) float64 {
 }
 
 // Step applies one answer: the evidence update then the transition. It
-// returns P(L next), the mastery reported after the answer.
+// returns P(L next), the mastery reported after the answer. It works on
+// P(L) alone, which loses the distance to 1 once P(L) rounds to 1; Record
+// uses StepPair, which does not.
 func (p Params) Step(pL float64, correct bool) float64 {
-	return p.Transition(p.Posterior(pL, correct))
+	k, u := p.Slip, 1-p.Guess
+	if correct {
+		k, u = 1-p.Slip, p.Guess
+	}
+	known := pL * k
+	den := known + (1-pL)*u
+	post := pL
+	if den > 0 {
+		post = known / den
+	}
+	return min(max(post*(1-p.Forget)+(1-post)*p.Learn, 0), 1)
+}
+
+// StepPair is Step on the pair (m, n) = (P(L), 1 − P(L)), each computed by
+// its own formula from sums and products of non-negative terms, never as 1
+// minus the other. So neither end loses precision: a learner at
+// P(L) = 1 − 1e-20 still needs the right number of wrong answers to fall
+// below the threshold, where Step would have rounded them to certainty.
+func (p Params) StepPair(m, n float64, correct bool) (float64, float64) {
+	k, u := p.Slip, 1-p.Guess
+	if correct {
+		k, u = 1-p.Slip, p.Guess
+	}
+	km, un := m*k, n*u
+	if den := km + un; den > 0 {
+		inv := 1 / den
+		m, n = km*inv, un*inv
+	}
+	return min(m*(1-p.Forget)+n*p.Learn, 1), min(n*(1-p.Learn)+m*p.Forget, 1)
+}
+
+// PredictPair is Predict on the pair (P(L), 1 − P(L)).
+func (p Params) PredictPair(m, n float64) float64 {
+	return m*(1-p.Slip) + n*p.Guess
 }
 
 func clamp01(x float64) float64 {

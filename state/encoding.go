@@ -25,8 +25,8 @@ const (
 )
 
 // recordLen is the fixed size of an encoded record:
-// version(1) mastery(8) opportunities(4) correct(4) flags(1) params_version(8) updated(8).
-const recordLen = 1 + 8 + 4 + 4 + 1 + 8 + 8
+// version(1) mastery(8) opportunities(4) correct(4) flags(1) params_version(8) updated(8) not_mastered(8).
+const recordLen = 1 + 8 + 4 + 4 + 1 + 8 + 8 + 8
 
 const (
 	recMastered     byte = 1 << 0
@@ -47,7 +47,8 @@ func appendRecord(dst []byte, r Record) []byte {
 	}
 	dst = append(dst, f)
 	dst = binary.BigEndian.AppendUint64(dst, uint64(r.ParamsVersion))
-	return binary.BigEndian.AppendUint64(dst, uint64(r.Updated))
+	dst = binary.BigEndian.AppendUint64(dst, uint64(r.Updated))
+	return binary.BigEndian.AppendUint64(dst, math.Float64bits(r.NotMastered))
 }
 
 func decodeRecord(b []byte) (Record, error) {
@@ -72,6 +73,7 @@ func decodeRecord(b []byte) (Record, error) {
 		EverMastered:  f&recEverMastered != 0,
 		ParamsVersion: int64(binary.BigEndian.Uint64(b[18:])),
 		Updated:       int64(binary.BigEndian.Uint64(b[26:])),
+		NotMastered:   math.Float64frombits(binary.BigEndian.Uint64(b[34:])),
 	}, nil
 }
 

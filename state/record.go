@@ -25,7 +25,10 @@ func DefaultPolicy() Policy { return Policy{Threshold: 0.95, StuckAfter: 10} }
 type Record struct {
 	// Mastery is P(L) at the learner's next opportunity: the prior before any
 	// answer, P(L next) after the latest one.
-	Mastery       float64
+	Mastery float64
+	// NotMastered is 1 − Mastery, carried separately so that an estimate
+	// close to 1 keeps its distance to 1 (see Params.StepPair).
+	NotMastered   float64
 	Opportunities uint32
 	Correct       uint32
 	// Mastered is Mastery ≥ threshold after the latest answer.
@@ -41,7 +44,7 @@ type Record struct {
 
 // NewRecord is the state of a learner who has not yet answered.
 func NewRecord(p Params, version int64) Record {
-	return Record{Mastery: p.Prior, ParamsVersion: version}
+	return Record{Mastery: p.Prior, NotMastered: 1 - p.Prior, ParamsVersion: version}
 }
 
 // Kind names an output event.
@@ -78,8 +81,11 @@ type Outcome struct {
 // the single place where an answer changes a record; the stream processor,
 // replay and re-derivation all call it.
 func (r *Record) Apply(p Params, correct bool, at int64, pol Policy) Outcome {
-	out := Outcome{PCorrect: p.Predict(r.Mastery)}
-	r.Mastery = p.Step(r.Mastery, correct)
+	if r.NotMastered == 0 && r.Mastery < 1 {
+		r.NotMastered = 1 - r.Mastery // a record made by hand with Mastery only
+	}
+	out := Outcome{PCorrect: p.PredictPair(r.Mastery, r.NotMastered)}
+	r.Mastery, r.NotMastered = p.StepPair(r.Mastery, r.NotMastered, correct)
 	r.Opportunities++
 	if correct {
 		r.Correct++

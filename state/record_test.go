@@ -84,3 +84,45 @@ func TestEventIDDeterministic(t *testing.T) {
 		}
 	}
 }
+
+// A learner far past the threshold who then answers wrong many times: the
+// record must fall as exact arithmetic says, not stay at a rounded 1.
+// Reference: exact rational arithmetic (Python fractions) of the equations
+// of Corbett & Anderson (1995), 40 correct then 35 wrong from prior 0.3,
+// learn 0.1, guess 0.2, slip 0.1:
+//
+//	m = F(3,10); for c in [1]*40+[0]*35: k,u = (1-S,G) if c else (S,1-G); post = m*k/(m*k+(1-m)*u); m = post+(1-post)*T
+//	→ 0.11748076625534622
+func TestRecordKeepsPrecisionNearOne(t *testing.T) {
+	p := Params{Prior: 0.3, Learn: 0.1, Guess: 0.2, Slip: 0.1}
+	pol := DefaultPolicy()
+	r := NewRecord(p, 1)
+	for i := 0; i < 40; i++ {
+		r.Apply(p, true, 0, pol)
+	}
+	if r.Mastery != 1 {
+		t.Logf("after 40 correct: mastery %v (1 − %g)", r.Mastery, r.NotMastered)
+	}
+	for i := 0; i < 35; i++ {
+		r.Apply(p, false, 0, pol)
+	}
+	near(t, "mastery after 40 correct, 35 wrong", r.Mastery, 0.11748076625534622, 1e-12)
+	near(t, "mastery + not mastered", r.Mastery+r.NotMastered, 1, 1e-12)
+	if r.Mastered {
+		t.Fatalf("still counted as mastered at %v", r.Mastery)
+	}
+}
+
+// StepPair agrees with Step wherever Step does not round (away from 1).
+func TestStepPairAgreesWithStep(t *testing.T) {
+	ps := []Params{DefaultParams(), {Prior: 0.05, Learn: 0.01, Guess: 0.2, Slip: 0.1, Forget: 0.02}, {Prior: 0.5, Learn: 0.3, Guess: 0.45, Slip: 0.3}}
+	for _, p := range ps {
+		m, n, l := p.Prior, 1-p.Prior, p.Prior
+		for i := 0; i < 12; i++ {
+			c := i%3 != 1
+			m, n = p.StepPair(m, n, c)
+			l = p.Step(l, c)
+			near(t, "StepPair vs Step", m, l, 1e-12)
+		}
+	}
+}
