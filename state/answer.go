@@ -67,15 +67,67 @@ func (d *NativeDecoder) Decode(b []byte) (Answer, error) {
 	if d.MaxBytes > 0 && len(b) > d.MaxBytes {
 		return Answer{}, &AnswerError{Reason: fmt.Sprintf("event is %d bytes, over the limit of %d", len(b), d.MaxBytes)}
 	}
-	var w wireAnswer
-	var skills []string
-	if !scanAnswer(b, &w, &skills) {
-		w = wireAnswer{}
+	var f fields
+	if !scanAnswer(string(b), &f) {
+		var w wireAnswer
 		if err := decodeSlow(b, &w); err != nil {
 			return Answer{}, err
 		}
+		f = w.fields()
 	}
-	return d.validate(&w)
+	return d.validate(&f)
+}
+
+// fields is a decoded event before validation; has says which were present.
+type fields struct {
+	has                   uint8
+	version               int
+	id, learner, item, at string
+	skills                []string
+	correct               bool
+}
+
+const (
+	hasID uint8 = 1 << iota
+	hasLearner
+	hasItem
+	hasAt
+	hasCorrect
+	hasSkills
+	hasVersion
+)
+
+func (w *wireAnswer) fields() fields {
+	var f fields
+	if w.ID != nil {
+		f.has |= hasID
+		f.id = *w.ID
+	}
+	if w.Learner != nil {
+		f.has |= hasLearner
+		f.learner = *w.Learner
+	}
+	if w.Item != nil {
+		f.has |= hasItem
+		f.item = *w.Item
+	}
+	if w.At != nil {
+		f.has |= hasAt
+		f.at = *w.At
+	}
+	if w.Correct != nil {
+		f.has |= hasCorrect
+		f.correct = *w.Correct
+	}
+	if w.Skills != nil {
+		f.has |= hasSkills
+		f.skills = *w.Skills
+	}
+	if w.Version != nil {
+		f.has |= hasVersion
+		f.version = *w.Version
+	}
+	return f
 }
 
 // decodeSlow decodes with encoding/json and explains what is wrong.
@@ -93,40 +145,37 @@ func decodeSlow(b []byte, w *wireAnswer) error {
 	return nil
 }
 
-func (d *NativeDecoder) validate(w *wireAnswer) (Answer, error) {
-	if w.Version != nil && *w.Version != NativeVersion {
-		return Answer{}, &AnswerError{Field: "version", Reason: fmt.Sprintf("version %d is not supported (this build reads version %d)", *w.Version, NativeVersion)}
+func (d *NativeDecoder) validate(f *fields) (Answer, error) {
+	if f.has&hasVersion != 0 && f.version != NativeVersion {
+		return Answer{}, &AnswerError{Field: "version", Reason: fmt.Sprintf("version %d is not supported (this build reads version %d)", f.version, NativeVersion)}
 	}
 	var a Answer
 	switch {
-	case w.ID == nil:
+	case f.has&hasID == 0:
 		return a, &AnswerError{Field: "id", Reason: "missing"}
-	case *w.ID == "":
+	case f.id == "":
 		return a, &AnswerError{Field: "id", Reason: "empty"}
-	case w.Learner == nil:
+	case f.has&hasLearner == 0:
 		return a, &AnswerError{Field: "learner", Reason: "missing"}
-	case *w.Learner == "":
+	case f.learner == "":
 		return a, &AnswerError{Field: "learner", Reason: "empty"}
-	case w.Correct == nil:
+	case f.has&hasCorrect == 0:
 		return a, &AnswerError{Field: "correct", Reason: "missing"}
-	case w.At == nil:
+	case f.has&hasAt == 0:
 		return a, &AnswerError{Field: "at", Reason: "missing"}
 	}
-	a.ID, a.Learner, a.Correct = *w.ID, *w.Learner, *w.Correct
+	a.ID, a.Learner, a.Correct, a.Item = f.id, f.learner, f.correct, f.item
 	if strings.IndexByte(a.Learner, 0) >= 0 {
 		return a, &AnswerError{Field: "learner", Reason: "contains a NUL byte"}
 	}
-	if w.Item != nil {
-		a.Item = *w.Item
-	}
-	at, err := time.Parse(time.RFC3339Nano, *w.At)
+	at, err := time.Parse(time.RFC3339Nano, f.at)
 	if err != nil {
-		return a, &AnswerError{Field: "at", Reason: fmt.Sprintf("%q is not an RFC 3339 time", *w.At)}
+		return a, &AnswerError{Field: "at", Reason: fmt.Sprintf("%q is not an RFC 3339 time", f.at)}
 	}
 	a.At = at
 	switch {
-	case w.Skills != nil:
-		a.Skills = *w.Skills
+	case f.has&hasSkills != 0:
+		a.Skills = f.skills
 		if len(a.Skills) == 0 {
 			return a, &AnswerError{Field: "skills", Reason: "empty list: an answer must be tagged with at least one skill"}
 		}

@@ -11,13 +11,15 @@ import (
 // keys, malformed JSON — and the caller falls back to encoding/json, which
 // then decides and explains. For every input where ok is true, the result
 // equals encoding/json's (FuzzDecodeFastPath checks this).
-func scanAnswer(b []byte, w *wireAnswer, skills *[]string) (ok bool) {
-	s := scanner{b: b}
+//
+// src is the whole event as one string: every field is a substring of it,
+// so the fast path allocates only the skill list.
+func scanAnswer(src string, f *fields) (ok bool) {
+	s := scanner{b: src}
 	s.ws()
 	if !s.eat('{') {
 		return false
 	}
-	var seen uint8
 	s.ws()
 	if s.eat('}') {
 		return s.end()
@@ -36,62 +38,49 @@ func scanAnswer(b []byte, w *wireAnswer, skills *[]string) (ok bool) {
 		var bit uint8
 		switch key {
 		case "id":
-			bit = 1
-			v, ok := s.str()
-			if !ok {
+			bit = hasID
+			if f.id, ok = s.str(); !ok {
 				return false
 			}
-			w.ID = &v
 		case "learner":
-			bit = 2
-			v, ok := s.str()
-			if !ok {
+			bit = hasLearner
+			if f.learner, ok = s.str(); !ok {
 				return false
 			}
-			w.Learner = &v
 		case "item":
-			bit = 4
-			v, ok := s.str()
-			if !ok {
+			bit = hasItem
+			if f.item, ok = s.str(); !ok {
 				return false
 			}
-			w.Item = &v
 		case "at":
-			bit = 8
-			v, ok := s.str()
-			if !ok {
+			bit = hasAt
+			if f.at, ok = s.str(); !ok {
 				return false
 			}
-			w.At = &v
 		case "correct":
-			bit = 16
-			v, ok := s.boolean()
-			if !ok {
+			bit = hasCorrect
+			if f.correct, ok = s.boolean(); !ok {
 				return false
 			}
-			w.Correct = &v
 		case "skills":
-			bit = 32
-			if !s.strArray(skills) {
+			bit = hasSkills
+			if !s.strArray(&f.skills) {
 				return false
 			}
-			w.Skills = skills
 		case "version":
-			bit = 64
-			v, ok := s.smallInt()
-			if !ok {
+			bit = hasVersion
+			if f.version, ok = s.smallInt(); !ok {
 				return false
 			}
-			w.Version = &v
 		default:
 			if foldsToKnown(key) || !s.skipValue(0) {
 				return false
 			}
 		}
-		if seen&bit != 0 {
+		if f.has&bit != 0 {
 			return false // a repeated key: let encoding/json decide
 		}
-		seen |= bit
+		f.has |= bit
 		s.ws()
 		if s.eat(',') {
 			continue
@@ -122,7 +111,7 @@ func foldsToKnown(key string) bool {
 }
 
 type scanner struct {
-	b []byte
+	b string
 	i int
 }
 
@@ -156,30 +145,29 @@ func (s *scanner) str() (string, bool) {
 	if !s.eat('"') {
 		return "", false
 	}
-	start := s.i
+	n := strings.IndexByte(s.b[s.i:], '"')
+	if n < 0 {
+		return "", false
+	}
+	v := s.b[s.i : s.i+n]
 	ascii := true
-	for s.i < len(s.b) {
-		c := s.b[s.i]
-		switch {
-		case c == '"':
-			v := s.b[start:s.i]
-			s.i++
-			if !ascii && !utf8.Valid(v) {
-				return "", false
-			}
-			return string(v), true
+	for i := 0; i < len(v); i++ {
+		switch c := v[i]; {
 		case c == '\\' || c < 0x20:
 			return "", false
 		case c >= utf8.RuneSelf:
 			ascii = false
 		}
-		s.i++
 	}
-	return "", false
+	if !ascii && !utf8.ValidString(v) {
+		return "", false
+	}
+	s.i += n + 1
+	return v, true
 }
 
 func (s *scanner) lit(word string) bool {
-	if len(s.b)-s.i >= len(word) && string(s.b[s.i:s.i+len(word)]) == word {
+	if len(s.b)-s.i >= len(word) && s.b[s.i:s.i+len(word)] == word {
 		s.i += len(word)
 		return true
 	}
