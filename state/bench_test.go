@@ -139,13 +139,13 @@ func BenchmarkApplyHotLearners(b *testing.B) {
 	runApply(b, s, as)
 }
 
-// BenchmarkCacheGet is one lookup in the record cache (hit).
+// BenchmarkCacheGet is one lookup in the learner cache (hit).
 func BenchmarkCacheGet(b *testing.B) {
-	c := newLRU[Record](200_000)
+	c := newLRU[*learnerVal](200_000, 200_000)
 	keys := make([][]byte, 100_000)
 	for i := range keys {
-		keys[i] = recordKey(nil, 0, "learner-"+strconv.Itoa(i), "trial-balance")
-		c.put(0, string(keys[i]), Record{Mastery: 0.5})
+		keys[i] = learnerRecordPrefix(nil, 0, "learner-"+strconv.Itoa(i))
+		c.put(0, string(keys[i]), &learnerVal{}, 1)
 	}
 	i := 0
 	for b.Loop() {

@@ -5,26 +5,30 @@ import (
 	"sync/atomic"
 )
 
-// lru is the store's write-through cache of committed values (records, id
-// windows), bounded by a count and evicting the least recently used. It
-// never holds staged state: partitions put values only after their commit
-// succeeded. Entries carry their partition's generation; dropPartition bumps
-// it, which invalidates every entry of the partition in O(1) (stale entries
-// are removed when met or evicted as the oldest).
+// lru is the store's write-through cache of committed values (a learner's
+// records and id window), bounded by the total weight of its entries (the
+// records they hold) and by their number, evicting the least recently used.
+// It never holds staged state: partitions put only committed values (read
+// from Pebble, or after their commit succeeded). Entries carry their
+// partition's generation; dropPartition bumps it, which invalidates every
+// entry of the partition in O(1) (stale entries are removed when met or
+// evicted as the oldest).
 //
 // Entries live in one slice linked by int32 indexes, so the cache is a few
 // pointer-free arrays plus the key strings and the map.
 type lru[V any] struct {
-	mu     sync.Mutex
-	cap    int
-	m      map[string]int32
-	ents   []lruEnt[V]
-	head   int32 // most recently used; -1 when empty
-	tail   int32 // least recently used
-	free   int32 // free list through next; -1 when none
-	gens   map[int32]uint32
-	hits   atomic.Int64
-	misses atomic.Int64
+	mu      sync.Mutex
+	cap     int // bound on the total weight
+	maxEnts int // bound on the number of entries
+	weight  int // total weight held
+	m       map[string]int32
+	ents    []lruEnt[V]
+	head    int32 // most recently used; -1 when empty
+	tail    int32 // least recently used
+	free    int32 // free list through next; -1 when none
+	gens    map[int32]uint32
+	hits    atomic.Int64
+	misses  atomic.Int64
 }
 
 type lruEnt[V any] struct {
@@ -32,14 +36,12 @@ type lruEnt[V any] struct {
 	val        V
 	part       int32
 	gen        uint32
+	weight     int32
 	prev, next int32
 }
 
-func newLRU[V any](capacity int) *lru[V] {
-	if capacity < 1 {
-		capacity = 1
-	}
-	return &lru[V]{cap: capacity, m: make(map[string]int32), head: -1, tail: -1, free: -1, gens: make(map[int32]uint32)}
+func newLRU[V any](capacity, maxEntries int) *lru[V] {
+	return &lru[V]{cap: max(capacity, 1), maxEnts: max(maxEntries, 1), m: make(map[string]int32), head: -1, tail: -1, free: -1, gens: make(map[int32]uint32)}
 }
 
 // get returns the value under key (the key bytes are not retained).
@@ -65,31 +67,30 @@ func (c *lru[V]) get(part int32, key []byte) (V, bool) {
 	return zero, false
 }
 
-// put stores val under key, evicting the least recently used entry when full.
-func (c *lru[V]) put(part int32, key string, val V) {
+// put stores val of the given weight under key, evicting the least
+// recently used entries as the bounds require. A value that alone weighs
+// more than the bound is not kept.
+func (c *lru[V]) put(part int32, key string, val V, weight int) {
 	c.mu.Lock()
 	defer c.mu.Unlock()
-	gen := c.gens[part]
 	if i, ok := c.m[key]; ok {
-		e := &c.ents[i]
-		e.val, e.part, e.gen = val, part, gen
-		c.moveToFrontLocked(i)
+		c.removeLocked(i)
+	}
+	if weight > c.cap {
 		return
 	}
+	for c.tail >= 0 && (len(c.m) >= c.maxEnts || c.weight+weight > c.cap) {
+		c.removeLocked(c.tail)
+	}
 	var i int32
-	switch {
-	case c.free >= 0:
+	if c.free >= 0 {
 		i = c.free
 		c.free = c.ents[i].next
-	case len(c.ents) < c.cap:
+	} else {
 		c.ents = append(c.ents, lruEnt[V]{})
 		i = int32(len(c.ents) - 1)
-	default:
-		i = c.tail
-		c.unlinkLocked(i)
-		delete(c.m, c.ents[i].key)
 	}
-	c.ents[i] = lruEnt[V]{key: key, val: val, part: part, gen: gen, prev: -1, next: c.head}
+	c.ents[i] = lruEnt[V]{key: key, val: val, part: part, gen: c.gens[part], weight: int32(weight), prev: -1, next: c.head}
 	if c.head >= 0 {
 		c.ents[c.head].prev = i
 	}
@@ -98,6 +99,7 @@ func (c *lru[V]) put(part int32, key string, val V) {
 		c.tail = i
 	}
 	c.m[key] = i
+	c.weight += weight
 }
 
 // dropPartition invalidates every entry of partition part.
@@ -107,17 +109,18 @@ func (c *lru[V]) dropPartition(part int32) {
 	c.mu.Unlock()
 }
 
-// len is the number of entries held, stale ones included (the bound
-// applies to all of them).
-func (c *lru[V]) len() int {
+// size returns the number of entries held and their total weight, stale
+// ones included (the bounds apply to all of them).
+func (c *lru[V]) size() (entries, weight int) {
 	c.mu.Lock()
 	defer c.mu.Unlock()
-	return len(c.m)
+	return len(c.m), c.weight
 }
 
 func (c *lru[V]) removeLocked(i int32) {
 	c.unlinkLocked(i)
 	delete(c.m, c.ents[i].key)
+	c.weight -= int(c.ents[i].weight)
 	c.ents[i] = lruEnt[V]{next: c.free}
 	c.free = i
 }

@@ -12,19 +12,23 @@ import (
 // does not decode.
 var ErrCorruptStore = errors.New("attain: corrupt store data")
 
-// Value encodings. Every value starts with a version byte; this build writes
-// version 1 of each and rejects any other with a clear error (a newer build
-// wrote it), so a format change is always explicit.
+// Value encodings. Every value starts with a version byte; this build
+// writes the latest version of each, reads the older ones listed here, and
+// rejects any other with a clear error (a newer build wrote it), so a
+// format change is always explicit.
 const (
-	recordV1    byte = 1
-	historyV1   byte = 1
+	recordV1    byte = 1 // the record's fields; its history one key per answer (read only)
+	recordV2    byte = 2 // the record's fields and the tail of its history
+	historyV1   byte = 1 // one answer per history key (read only)
+	historyV2   byte = 2 // a chunk of answers per history key
 	windowV1    byte = 1
 	partStateV1 byte = 1
 	outboxV1    byte = 1
 	metaV1      byte = 1
 )
 
-// recordLen is the fixed size of an encoded record:
+// recordLen is the size of a version 1 record value, and of the fixed
+// part of a version 2 one:
 // version(1) mastery(8) opportunities(4) correct(4) flags(1) params_version(8) updated(8) not_mastered(8).
 const recordLen = 1 + 8 + 4 + 4 + 1 + 8 + 8 + 8
 
@@ -33,8 +37,60 @@ const (
 	recEverMastered byte = 1 << 1
 )
 
+// recVal is a learner-skill record as stored: the record and the tail of
+// its history, the latest tailN answers, which live in the record's value
+// until they are moved to a history chunk key (see Partition.Apply). The
+// answers before the tail are in the history keys. Keeping the latest
+// answers in the value that is rewritten anyway saves a Pebble key per
+// answer.
+type recVal struct {
+	rec    Record
+	tail   []byte // tailN entries in the compact history encoding (appendHistEntry)
+	tailN  uint32
+	prevAt int64 // `at` of the tail's last entry (0 when the tail is empty)
+}
+
+// push appends one answer to the tail. It never writes into tail's spare
+// capacity when that is shared: values handed to the cache are capped
+// (len == cap), so the first push after a load copies.
+func (rv *recVal) push(h HistoryEntry) {
+	if rv.tailN == 0 {
+		rv.prevAt = 0
+	}
+	rv.tail = appendHistEntry(rv.tail, rv.prevAt, h)
+	rv.tailN++
+	rv.prevAt = h.At
+}
+
+// Record value, version 2: the 41 bytes of the record's fields as in
+// version 1, then tail_n(uvarint) tail_bytes(uvarint) and the tail's
+// entries, then the learner's applied-id window when this record carries
+// it: 0 (it does not) or 1 seq(uvarint) and the window's body (see
+// appendWindowBody). One record of a learner — the one its latest answer
+// updated — carries the current window (the one with the highest seq;
+// other records may keep older ones), so that an answer rewrites one key,
+// not a record and a window.
+func appendRecordVal(dst []byte, rv *recVal, w *window) []byte {
+	dst = append(dst, recordV2)
+	dst = appendRecordFields(dst, rv.rec)
+	dst = binary.AppendUvarint(dst, uint64(rv.tailN))
+	dst = binary.AppendUvarint(dst, uint64(len(rv.tail)))
+	dst = append(dst, rv.tail...)
+	if w == nil {
+		return append(dst, 0)
+	}
+	dst = append(dst, 1)
+	dst = binary.AppendUvarint(dst, w.seq)
+	return appendWindowBody(dst, w)
+}
+
+// appendRecord is the version 1 record value (the format of records
+// written before history tails; kept to check that it is still read).
 func appendRecord(dst []byte, r Record) []byte {
-	dst = append(dst, recordV1)
+	return appendRecordFields(append(dst, recordV1), r)
+}
+
+func appendRecordFields(dst []byte, r Record) []byte {
 	dst = binary.BigEndian.AppendUint64(dst, math.Float64bits(r.Mastery))
 	dst = binary.BigEndian.AppendUint32(dst, r.Opportunities)
 	dst = binary.BigEndian.AppendUint32(dst, r.Correct)
@@ -51,16 +107,80 @@ func appendRecord(dst []byte, r Record) []byte {
 	return binary.BigEndian.AppendUint64(dst, math.Float64bits(r.NotMastered))
 }
 
+// decodeRecord returns the record of a version 1 or 2 record value.
 func decodeRecord(b []byte) (Record, error) {
+	rv, _, err := decodeRecordVal(b)
+	return rv.rec, err
+}
+
+// decodeRecordVal decodes a version 1 (no tail, no window) or 2 record
+// value; w is the window it carries, nil if none. The tail is a view into b.
+func decodeRecordVal(b []byte) (rv recVal, w *window, err error) {
+	rv, rest, err := decodeRecordHead(b)
+	if err != nil || rest == nil {
+		return rv, nil, err
+	}
+	switch {
+	case len(rest) == 1 && rest[0] == 0:
+		return rv, nil, nil
+	case len(rest) > 1 && rest[0] == 1:
+		seq, k := binary.Uvarint(rest[1:])
+		if k <= 0 {
+			return recVal{}, nil, fmt.Errorf("%w: record value has a bad window sequence", ErrCorruptStore)
+		}
+		dw, err := decodeWindowBody(rest[1+k:])
+		if err != nil {
+			return recVal{}, nil, err
+		}
+		dw.seq = seq
+		return rv, &dw, nil
+	}
+	return recVal{}, nil, fmt.Errorf("%w: record value has a bad window section", ErrCorruptStore)
+}
+
+// decodeRecordHead decodes a record value up to its tail; rest is what
+// follows the tail in a version 2 value, nil for version 1.
+func decodeRecordHead(b []byte) (rv recVal, rest []byte, err error) {
 	if len(b) == 0 {
-		return Record{}, fmt.Errorf("%w: empty record value", ErrCorruptStore)
+		return recVal{}, nil, fmt.Errorf("%w: empty record value", ErrCorruptStore)
 	}
-	if b[0] != recordV1 {
-		return Record{}, versionErr("record", b[0], recordV1)
+	switch {
+	case b[0] == recordV1 && len(b) != recordLen:
+		return recVal{}, nil, fmt.Errorf("%w: record value is %d bytes, want %d", ErrCorruptStore, len(b), recordLen)
+	case b[0] == recordV2 && len(b) < recordLen+1:
+		return recVal{}, nil, fmt.Errorf("%w: record value is %d bytes, want at least %d", ErrCorruptStore, len(b), recordLen+1)
+	case b[0] != recordV1 && b[0] != recordV2:
+		return recVal{}, nil, versionErr("record", b[0], recordV2)
 	}
-	if len(b) != recordLen {
-		return Record{}, fmt.Errorf("%w: record value is %d bytes, want %d", ErrCorruptStore, len(b), recordLen)
+	rec, err := decodeRecordFields(b)
+	if err != nil {
+		return recVal{}, nil, err
 	}
+	rv = recVal{rec: rec}
+	if b[0] == recordV1 {
+		return rv, nil, nil
+	}
+	r := reader{b: b[recordLen:]}
+	n, nb := r.uvarint(), r.uvarint()
+	if r.err != nil || nb > uint64(len(r.b)) {
+		return recVal{}, nil, fmt.Errorf("%w: record value has a bad history tail length", ErrCorruptStore)
+	}
+	if n > uint64(rec.Opportunities) {
+		return recVal{}, nil, fmt.Errorf("%w: record history tail holds %d answers, more than its %d opportunities", ErrCorruptStore, n, rec.Opportunities)
+	}
+	rv.tail = r.b[:nb:nb]
+	rv.tailN = uint32(n)
+	last, err := forHistEntries(rv.tail, n, nil)
+	if err != nil {
+		return recVal{}, nil, fmt.Errorf("%w: record history tail: %v", ErrCorruptStore, err)
+	}
+	if n > 0 {
+		rv.prevAt = last
+	}
+	return rv, r.b[nb:], nil
+}
+
+func decodeRecordFields(b []byte) (Record, error) {
 	f := b[17]
 	if f&^(recMastered|recEverMastered) != 0 {
 		return Record{}, fmt.Errorf("%w: record flags %#x has unknown bits", ErrCorruptStore, f)
@@ -81,7 +201,8 @@ func versionErr(what string, got, want byte) error {
 	return fmt.Errorf("%w: %s value has version %d, this build reads version %d (written by a newer attain? upgrade)", ErrCorruptStore, what, got, want)
 }
 
-// History value: version(1) flags(1: bit 0 = correct) at(varint, Unix nanoseconds).
+// History value, version 1 (one answer per key, read only): version(1)
+// flags(1: bit 0 = correct) at(varint, Unix nanoseconds).
 const histCorrect byte = 1 << 0
 
 func appendHistory(dst []byte, h HistoryEntry) []byte {
@@ -110,6 +231,103 @@ func decodeHistory(b []byte) (HistoryEntry, error) {
 	return HistoryEntry{At: at, Correct: b[1]&histCorrect != 0}, nil
 }
 
+// History chunk value, version 2: version(1) n(uvarint, ≥ 1) then n
+// entries in the compact history encoding, the first relative to 0. The
+// key names the opportunity of the chunk's first answer.
+func appendHistoryChunk(dst []byte, n uint32, entries []byte) []byte {
+	dst = append(dst, historyV2)
+	dst = binary.AppendUvarint(dst, uint64(n))
+	return append(dst, entries...)
+}
+
+// forHistoryValue calls fn for each answer of a version 1 or 2 history
+// value, in order, and returns how many there were.
+func forHistoryValue(b []byte, fn func(HistoryEntry)) (int, error) {
+	if len(b) > 0 && b[0] == historyV2 {
+		n, k := binary.Uvarint(b[1:])
+		if k <= 0 || n == 0 || n > uint64(len(b)) {
+			return 0, fmt.Errorf("%w: history chunk has a bad length", ErrCorruptStore)
+		}
+		if _, err := forHistEntries(b[1+k:], n, fn); err != nil {
+			return 0, fmt.Errorf("%w: history chunk: %v", ErrCorruptStore, err)
+		}
+		return int(n), nil
+	}
+	h, err := decodeHistory(b)
+	if err != nil {
+		if len(b) > 0 && b[0] != historyV1 {
+			return 0, versionErr("history", b[0], historyV2)
+		}
+		return 0, err
+	}
+	if fn != nil {
+		fn(h)
+	}
+	return 1, nil
+}
+
+// The compact history encoding of one answer, relative to the `at` of the
+// previous answer in the same chunk or tail (prev, 0 for the first):
+//
+//	uvarint(zz<<3 | unit<<1 | correct)
+//
+// where delta = at − prev (two's-complement, wrapping), unit (0..3) is the
+// largest of ns, µs, ms, s that divides delta (s for 0), and zz is the
+// zigzag encoding of delta/unit. Answers a minute apart at whole seconds
+// take 2 bytes, at whole milliseconds 3. When zz does not fit in 61 bits
+// (|delta| ≥ 2⁶⁰ ns, about 36 years) the entry is uvarint(correct) — unit
+// ns with zz 0, which the rule above never produces — followed by
+// uvarint(zz) in full.
+var histUnits = [4]int64{1, 1e3, 1e6, 1e9}
+
+func appendHistEntry(dst []byte, prev int64, h HistoryEntry) []byte {
+	d := int64(uint64(h.At) - uint64(prev))
+	unit := 3
+	for unit > 0 && d%histUnits[unit] != 0 {
+		unit--
+	}
+	q := d / histUnits[unit]
+	zz := uint64(q<<1) ^ uint64(q>>63)
+	var c uint64
+	if h.Correct {
+		c = 1
+	}
+	if zz >= 1<<61 {
+		dst = binary.AppendUvarint(dst, c)
+		return binary.AppendUvarint(dst, zz)
+	}
+	return binary.AppendUvarint(dst, zz<<3|uint64(unit)<<1|c)
+}
+
+// forHistEntries decodes exactly n entries filling b, calling fn (if not
+// nil) for each; it returns the last `at`.
+func forHistEntries(b []byte, n uint64, fn func(HistoryEntry)) (int64, error) {
+	var prev int64
+	for i := uint64(0); i < n; i++ {
+		x, k := binary.Uvarint(b)
+		if k <= 0 {
+			return 0, fmt.Errorf("entry %d of %d is truncated", i+1, n)
+		}
+		b = b[k:]
+		unit, zz := (x>>1)&3, x>>3
+		if x>>1 == 0 {
+			if zz, k = binary.Uvarint(b); k <= 0 {
+				return 0, fmt.Errorf("entry %d of %d is truncated", i+1, n)
+			}
+			b = b[k:]
+		}
+		q := int64(zz>>1) ^ -int64(zz&1)
+		prev = int64(uint64(prev) + uint64(q*histUnits[unit]))
+		if fn != nil {
+			fn(HistoryEntry{At: prev, Correct: x&1 != 0})
+		}
+	}
+	if len(b) != 0 {
+		return 0, fmt.Errorf("%d bytes after %d entries", len(b), n)
+	}
+	return prev, nil
+}
+
 // window is a learner's applied-id window: the hashes of the last ids
 // applied (oldest first) and the latest `at` seen.
 //
@@ -120,6 +338,7 @@ func decodeHistory(b []byte) (HistoryEntry, error) {
 // non-adversarial input), i.e. ~32·2⁻⁶⁴ ≈ 1.7·10⁻¹⁸ per answer with a
 // window of 32 — far below any other failure rate of the system.
 type window struct {
+	seq    uint64 // answers applied to the learner (0 in schema 1 windows)
 	hasAt  bool
 	lastAt int64
 	ids    []uint64
@@ -140,6 +359,7 @@ func (w *window) add(h uint64, at int64, max int) {
 		w.ids = w.ids[:n]
 	}
 	w.ids = append(w.ids, h)
+	w.seq++
 	if !w.hasAt || at > w.lastAt {
 		w.lastAt, w.hasAt = at, true
 	}
@@ -165,13 +385,18 @@ func idHash(id string) uint64 {
 	return h
 }
 
-// Window value: version(1) flags(1: bit 0 = has at) last_at(varint) n(uvarint) n×hash(8, BE).
+// Window value (schema 1 window keys; read only): version(1) and the body.
 func appendWindow(dst []byte, w *window) []byte {
+	return appendWindowBody(append(dst, windowV1), w)
+}
+
+// Window body: flags(1: bit 0 = has at) last_at(varint) n(uvarint) n×hash(8, BE).
+func appendWindowBody(dst []byte, w *window) []byte {
 	var f byte
 	if w.hasAt {
 		f = 1
 	}
-	dst = append(dst, windowV1, f)
+	dst = append(dst, f)
 	dst = binary.AppendVarint(dst, w.lastAt)
 	dst = binary.AppendUvarint(dst, uint64(len(w.ids)))
 	for _, h := range w.ids {
@@ -187,14 +412,21 @@ func decodeWindow(b []byte) (window, error) {
 	if b[0] != windowV1 {
 		return window{}, versionErr("id window", b[0], windowV1)
 	}
-	if b[1] > 1 {
-		return window{}, fmt.Errorf("%w: id window flags %#x has unknown bits", ErrCorruptStore, b[1])
+	return decodeWindowBody(b[1:])
+}
+
+func decodeWindowBody(b []byte) (window, error) {
+	if len(b) < 1 {
+		return window{}, fmt.Errorf("%w: id window is empty", ErrCorruptStore)
 	}
-	w := window{hasAt: b[1] == 1}
-	r := reader{b: b[2:]}
+	if b[0] > 1 {
+		return window{}, fmt.Errorf("%w: id window flags %#x has unknown bits", ErrCorruptStore, b[0])
+	}
+	w := window{hasAt: b[0] == 1}
+	r := reader{b: b[1:]}
 	w.lastAt = r.varint()
 	n := r.uvarint()
-	if r.err == nil && n*8 != uint64(len(r.b)) {
+	if r.err == nil && (n > uint64(len(r.b))/8 || n*8 != uint64(len(r.b))) {
 		return window{}, fmt.Errorf("%w: id window says %d ids but holds %d bytes", ErrCorruptStore, n, len(r.b))
 	}
 	if r.err != nil {

@@ -2,6 +2,7 @@ package state
 
 import (
 	"bytes"
+	"errors"
 	"fmt"
 	"strings"
 
@@ -42,34 +43,62 @@ func (s *Store) History(learner, skill string) ([]HistoryEntry, error) {
 	return out, nil
 }
 
-// historyOf calls fn for each committed history entry of the learner-skill
-// whose record key is rk, in order.
+// historyOf calls fn for each committed answer of the learner-skill whose
+// record key is rk, in order: its history keys, then its record's tail,
+// read through one iterator so that both come from the same moment.
 func (s *Store) historyOf(r pebble.Reader, rk []byte, fn func(HistoryEntry)) error {
-	lo := append(make([]byte, 0, len(rk)+1), rk...)
-	lo[4] = famHistory
-	lo = append(lo, 0)
+	lo := historyPrefixFromRecordKey(rk)
+	it, err := r.NewIter(&pebble.IterOptions{LowerBound: rk, UpperBound: prefixEnd(lo)})
+	if err != nil {
+		return err
+	}
+	err = forHistoryKeys(it, lo, fn)
+	if err == nil && it.SeekGE(rk) && bytes.Equal(it.Key(), rk) {
+		err = forRecordTail(it, fn)
+	}
+	return errors.Join(err, it.Error(), it.Close())
+}
+
+// historyKeys calls fn for each answer in the committed history keys of
+// the learner-skill whose record key is rk (not its record's tail).
+func (s *Store) historyKeys(r pebble.Reader, rk []byte, fn func(HistoryEntry)) error {
+	lo := historyPrefixFromRecordKey(rk)
 	it, err := r.NewIter(&pebble.IterOptions{LowerBound: lo, UpperBound: prefixEnd(lo)})
 	if err != nil {
 		return err
 	}
-	for ok := it.First(); ok; ok = it.Next() {
+	err = forHistoryKeys(it, lo, fn)
+	return errors.Join(err, it.Error(), it.Close())
+}
+
+// forHistoryKeys calls fn for the answers of every key with prefix (a
+// learner-skill's history prefix), in key order.
+func forHistoryKeys(it *pebble.Iterator, prefix []byte, fn func(HistoryEntry)) error {
+	for ok := it.SeekGE(prefix); ok && bytes.HasPrefix(it.Key(), prefix); ok = it.Next() {
 		v, err := it.ValueAndErr()
 		if err != nil {
-			it.Close()
 			return err
 		}
-		h, err := decodeHistory(v)
-		if err != nil {
-			it.Close()
+		if _, err := forHistoryValue(v, fn); err != nil {
 			return fmt.Errorf("key %q: %w", it.Key(), err)
 		}
-		fn(h)
 	}
-	if err := it.Error(); err != nil {
-		it.Close()
+	return nil
+}
+
+// forRecordTail calls fn for the answers in the tail of the record value
+// under the iterator.
+func forRecordTail(it *pebble.Iterator, fn func(HistoryEntry)) error {
+	v, err := it.ValueAndErr()
+	if err != nil {
 		return err
 	}
-	return it.Close()
+	rv, _, err := decodeRecordVal(v)
+	if err != nil {
+		return fmt.Errorf("key %q: %w", it.Key(), err)
+	}
+	_, err = forHistEntries(rv.tail, uint64(rv.tailN), fn)
+	return err
 }
 
 // ScanHistory calls fn once per learner-skill with its answers in applied
@@ -86,76 +115,100 @@ func (s *Store) ScanHistory(fn func(learner, skill string, h []HistoryEntry) err
 	if s.closed {
 		return ErrStoreClosed
 	}
-	// One iterator is one consistent view of the whole database, so every
-	// partition is read as of the same moment.
-	it, err := s.db.NewIter(&pebble.IterOptions{UpperBound: familyPrefix(metaPartition, 0)})
+	// One snapshot is one consistent view of the whole database, so every
+	// partition is read as of the same moment. Partitions are listed after
+	// it is taken: a partition is listed before its first commit.
+	snap := s.db.NewSnapshot()
+	defer snap.Close()
+	for _, p := range s.partList() {
+		if err := scanPartitionHistory(snap, uint32(p), fn); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// scanPartitionHistory is ScanHistory over partition p: it walks p's
+// records and history keys side by side (both are ordered by
+// learner\x00skill, and every learner-skill with answers has a record).
+func scanPartitionHistory(snap *pebble.Snapshot, p uint32, fn func(learner, skill string, h []HistoryEntry) error) (err error) {
+	recs, err := snap.NewIter(&pebble.IterOptions{LowerBound: familyPrefix(p, famRecord), UpperBound: familyEnd(p, famRecord)})
 	if err != nil {
 		return fmt.Errorf("attain: scanning history: %w", err)
 	}
-	defer it.Close()
+	defer func() { err = errors.Join(err, recs.Close()) }()
+	hist, err := snap.NewIter(&pebble.IterOptions{LowerBound: familyPrefix(p, famHistory), UpperBound: familyEnd(p, famHistory)})
+	if err != nil {
+		return fmt.Errorf("attain: scanning history: %w", err)
+	}
+	defer func() { err = errors.Join(err, hist.Close()) }()
 
-	var (
-		group   []byte
-		gPart   uint32
-		learner string
-		skill   string
-		h       []HistoryEntry
-	)
-	flush := func() error {
-		if len(h) == 0 {
+	var h []HistoryEntry
+	add := func(e HistoryEntry) { h = append(h, e) }
+	var group []byte // learner\x00skill of the history key under hist
+	hOK, rOK := hist.First(), recs.First()
+	nextGroup := func() error {
+		if !hOK {
 			return nil
 		}
-		out := h
-		h = nil
-		return fn(learner, skill, out)
-	}
-	valid := it.SeekGE(familyPrefix(0, famHistory))
-	for valid {
-		k := it.Key()
-		kp, fam, ok := keyPartition(k)
-		if !ok {
-			return fmt.Errorf("attain: scanning history: %w: key %q is too short", ErrCorruptStore, k)
-		}
-		if fam != famHistory {
-			if err := flush(); err != nil {
-				return err
-			}
-			switch {
-			case fam < famHistory:
-				valid = it.SeekGE(familyPrefix(kp, famHistory))
-			case kp+1 == metaPartition:
-				valid = false
-			default:
-				valid = it.SeekGE(familyPrefix(kp+1, famHistory))
-			}
-			continue
-		}
-		g, _, err := splitHistoryKey(k)
+		g, _, err := splitHistoryKey(hist.Key())
 		if err != nil {
-			return fmt.Errorf("attain: scanning history: %w", err)
+			return err
 		}
-		if kp != gPart || !bytes.Equal(g, group) {
-			if err := flush(); err != nil {
-				return err
+		group = append(group[:0], g[:len(g)-1]...)
+		return nil
+	}
+	if err := nextGroup(); err != nil {
+		return fmt.Errorf("attain: scanning history: %w", err)
+	}
+	for hOK || rOK {
+		// The next learner-skill: the smaller of the two iterators' groups.
+		var cur []byte
+		switch {
+		case !rOK:
+			cur = group
+		case !hOK:
+			cur = recs.Key()[partPrefixLen:]
+		default:
+			cur = recs.Key()[partPrefixLen:]
+			if bytes.Compare(group, cur) < 0 {
+				cur = group // history without a record: reported all the same
 			}
-			group, gPart = append(group[:0], g...), kp
-			if learner, skill, err = splitGroup(g); err != nil {
+		}
+		cur = append([]byte(nil), cur...)
+		h = nil
+		for hOK && bytes.Equal(group, cur) {
+			v, err := hist.ValueAndErr()
+			if err != nil {
+				return fmt.Errorf("attain: scanning history: %w", err)
+			}
+			if _, err := forHistoryValue(v, add); err != nil {
+				return fmt.Errorf("attain: scanning history, key %q: %w", hist.Key(), err)
+			}
+			hOK = hist.Next()
+			if err := nextGroup(); err != nil {
 				return fmt.Errorf("attain: scanning history: %w", err)
 			}
 		}
-		v, err := it.ValueAndErr()
-		if err != nil {
-			return fmt.Errorf("attain: scanning history: %w", err)
+		if rOK && bytes.Equal(recs.Key()[partPrefixLen:], cur) {
+			if err := forRecordTail(recs, add); err != nil {
+				return fmt.Errorf("attain: scanning history: %w", err)
+			}
+			rOK = recs.Next()
 		}
-		e, err := decodeHistory(v)
-		if err != nil {
-			return fmt.Errorf("attain: scanning history, key %q: %w", k, err)
+		if len(h) == 0 {
+			continue
 		}
-		h = append(h, e)
-		valid = it.Next()
+		i := bytes.IndexByte(cur, 0)
+		if i < 0 {
+			return fmt.Errorf("attain: scanning history: %w: learner-skill %q has no separator", ErrCorruptStore, cur)
+		}
+		if err := fn(string(cur[:i]), string(cur[i+1:]), h); err != nil {
+			return err
+		}
 	}
-	if err := it.Error(); err != nil {
+	if err := errors.Join(recs.Error(), hist.Error()); err != nil {
 		return fmt.Errorf("attain: scanning history: %w", err)
 	}
-	return flush()
+	return nil
 }

@@ -10,8 +10,8 @@ import (
 // big-endian partition, then a family byte, so that one partition's data is
 // one contiguous key range and each family inside it is a sub-range:
 //
-//	record   P 0x01 learner 0x00 skill              → encodeRecord
-//	history  P 0x02 learner 0x00 skill 0x00 opp(BE4) → encodeHistory (one key per answer)
+//	record   P 0x01 learner 0x00 skill              → appendRecordVal (the record and the tail of its history)
+//	history  P 0x02 learner 0x00 skill 0x00 opp(BE4) → appendHistoryChunk (answers opp, opp+1, …; schema 1: one answer)
 //	window   P 0x03 learner                         → encodeWindow (applied-id window, latest `at`)
 //	state    P 0x04                                 → encodePartState (consumed offset, next outbox seq, record count)
 //	outbox   P 0x05 seq(BE8)                        → encodeOutbox
@@ -70,6 +70,14 @@ func historyPrefix(dst []byte, p int32, learner, skill string) []byte {
 func historyKey(dst []byte, p int32, learner, skill string, opp uint32) []byte {
 	dst = historyPrefix(dst, p, learner, skill)
 	return binary.BigEndian.AppendUint32(dst, opp)
+}
+
+// historyPrefixFromRecordKey is the prefix of every history key of the
+// learner-skill whose record key is rk.
+func historyPrefixFromRecordKey(rk []byte) []byte {
+	lo := append(make([]byte, 0, len(rk)+5), rk...)
+	lo[4] = famHistory
+	return append(lo, 0)
 }
 
 // historyKeyFromRecordKey turns a record key into the history key of its

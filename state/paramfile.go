@@ -37,6 +37,14 @@ type FitInfo struct {
 	Converged  bool     `json:"converged"`
 	Heldout    *Metrics `json:"heldout,omitempty"`
 	Warnings   []string `json:"warnings,omitempty"`
+
+	// Provenance, written by gated refits (zero when unknown).
+	Fitted          time.Time `json:"fitted,omitzero"`            // when the fit ran
+	From            time.Time `json:"from,omitzero"`              // earliest answer fitted
+	To              time.Time `json:"to,omitzero"`                // latest answer fitted
+	Folds           int       `json:"folds,omitempty"`            // cross-validation folds behind Heldout
+	PreviousVersion int64     `json:"previous_version,omitempty"` // the version this one replaced
+	PreviousHeldout *Metrics  `json:"previous_heldout,omitempty"` // the replaced set on the same held-out learners
 }
 
 // Metrics are next-answer prediction scores.

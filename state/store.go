@@ -32,7 +32,14 @@ var (
 
 // storeSchema is the layout of keys.go and encoding.go. Bump it with a
 // migration when either changes incompatibly.
-const storeSchema = 1
+//
+// Schema 2 keeps the latest answers of a learner-skill in its record value
+// (version 2) and the older ones in history chunks (history version 2);
+// schema 1 wrote one history key per answer and version 1 records. This
+// build reads both, so a schema 1 store is taken over as it is: its schema
+// key is set to 2 at open, since values a schema 1 build cannot read may be
+// written from then on.
+const storeSchema = 2
 
 // Defaults of StoreOptions (our choices, sized so that a million
 // learner-skill records fit well inside 512 MiB; see bench_test.go).
@@ -50,9 +57,10 @@ type StoreOptions struct {
 	DedupeWindow    int    // applied answer ids remembered per learner (default 32)
 	Policy          Policy // thresholds (zero value: DefaultPolicy())
 	Logger          zerolog.Logger
-	// CacheLearners bounds the cache of learners' applied-id windows
-	// (default CacheRecords/4, at least 1024: a learner usually practises
-	// several skills; our choice).
+	// CacheLearners bounds the number of learners in the cache, whose
+	// entries hold a learner's records and applied-id window (default
+	// CacheRecords/4, at least 1024: a learner usually practises several
+	// skills; our choice).
 	CacheLearners int
 	// MemTableBytes is Pebble's memtable size (default 16 MiB. Pebble's own
 	// default is 4 MiB; measured with BenchmarkApplyCommit on the 2-core
@@ -121,8 +129,7 @@ type Store struct {
 	slots map[int32]*partSlot // per-partition commit lock and the live handle
 	parts map[int32]struct{}  // partitions that have (or are committing) data
 
-	recCache *lru[Record]
-	winCache *lru[window]
+	cache *lru[*learnerVal] // learner record prefix → the learner's committed state
 
 	outboxMu sync.Mutex // serialises DeleteOutbox so the depth stays exact
 	depth    atomic.Int64
@@ -169,13 +176,12 @@ func OpenStore(dir string, opt StoreOptions) (*Store, error) {
 		return nil, fmt.Errorf("attain: opening store in %s: %w", dir, err)
 	}
 	s := &Store{
-		db:       db,
-		opt:      opt,
-		log:      log,
-		slots:    make(map[int32]*partSlot),
-		parts:    make(map[int32]struct{}),
-		recCache: newLRU[Record](opt.CacheRecords),
-		winCache: newLRU[window](opt.CacheLearners),
+		db:    db,
+		opt:   opt,
+		log:   log,
+		slots: make(map[int32]*partSlot),
+		parts: make(map[int32]struct{}),
+		cache: newLRU[*learnerVal](opt.CacheRecords, opt.CacheLearners),
 	}
 	if err := s.checkSchema(dir); err != nil {
 		db.Close()
@@ -221,6 +227,14 @@ func (s *Store) checkSchema(dir string) error {
 	got, n := binary.Uvarint(v[1:])
 	if n <= 0 {
 		return fmt.Errorf("%w: %s: schema value %x is malformed", ErrStoreSchema, dir, v)
+	}
+	if got == 1 {
+		val := binary.AppendUvarint([]byte{metaV1}, storeSchema)
+		if err := s.db.Set(k, val, pebble.Sync); err != nil {
+			return fmt.Errorf("attain: upgrading the store schema in %s: %w", dir, err)
+		}
+		s.log.Info().Str("dir", dir).Msg("store schema 1 taken over as schema 2 (history tails in record values)")
+		return nil
 	}
 	if got != storeSchema {
 		return fmt.Errorf("%w: %s has store schema %d, this build reads schema %d (upgrade attain, or use another data directory)", ErrStoreSchema, dir, got, storeSchema)
@@ -366,10 +380,12 @@ func (s *Store) Learner(learner string) (map[string]Record, bool, error) {
 // StoreStats are counters for metrics. Counters count since OpenStore;
 // Records and OutboxDepth are gauges of committed state.
 type StoreStats struct {
+	// CacheHits and CacheMisses count the answers whose learner was found
+	// in, or missing from, the cache (answers of a learner already staged
+	// in the batch in hand are neither).
 	CacheHits, CacheMisses, Records int64
-	CachedRecords                   int64 // entries held by the record cache (≤ CacheRecords)
-	WindowCacheHits                 int64 // applied-id window cache
-	WindowCacheMisses               int64
+	CachedRecords                   int64 // records held by the cache (≤ CacheRecords)
+	CachedLearners                  int64 // learners held by the cache (≤ CacheLearners)
 	Applied                         int64 // answers staged (not duplicates, not replays)
 	Duplicates                      int64
 	Late                            int64
@@ -389,23 +405,23 @@ type StoreStats struct {
 
 // Stats returns the current counters (Pebble's figures are zero after Close).
 func (s *Store) Stats() StoreStats {
+	learners, records := s.cache.size()
 	st := StoreStats{
-		CacheHits:         s.recCache.hits.Load(),
-		CacheMisses:       s.recCache.misses.Load(),
-		Records:           s.records.Load(),
-		CachedRecords:     int64(s.recCache.len()),
-		WindowCacheHits:   s.winCache.hits.Load(),
-		WindowCacheMisses: s.winCache.misses.Load(),
-		Applied:           s.applied.Load(),
-		Duplicates:        s.duplicates.Load(),
-		Late:              s.late.Load(),
-		Rederived:         s.rederived.Load(),
-		DeadLetters:       s.deadLetters.Load(),
-		Skipped:           s.skipped.Load(),
-		Replayed:          s.replayed.Load(),
-		Commits:           s.commits.Load(),
-		CommitFailures:    s.commitFailures.Load(),
-		OutboxDepth:       s.depth.Load(),
+		CacheHits:      s.cache.hits.Load(),
+		CacheMisses:    s.cache.misses.Load(),
+		Records:        s.records.Load(),
+		CachedRecords:  int64(records),
+		CachedLearners: int64(learners),
+		Applied:        s.applied.Load(),
+		Duplicates:     s.duplicates.Load(),
+		Late:           s.late.Load(),
+		Rederived:      s.rederived.Load(),
+		DeadLetters:    s.deadLetters.Load(),
+		Skipped:        s.skipped.Load(),
+		Replayed:       s.replayed.Load(),
+		Commits:        s.commits.Load(),
+		CommitFailures: s.commitFailures.Load(),
+		OutboxDepth:    s.depth.Load(),
 	}
 	s.mu.Lock()
 	st.Partitions = len(s.parts)

@@ -71,32 +71,20 @@ type Partition struct {
 	pending   int       // offsets staged since the last Commit
 	outboxN   int64     // outbox entries staged
 
-	batch *pebble.Batch
-	recs  map[string]*stagedRec // record key → staged record
-	wins  map[string]*window    // window key → staged window
-	hist  []stagedHist          // history appended since the last Commit, in order
+	batch    *pebble.Batch
+	learners map[string]*stagedLearner // learner key → the learner's staged changes
+	spare    []*stagedLearner          // cleared ones, for reuse
 
-	kbuf, vbuf, wkbuf []byte
-	rkbuf             []byte // record keys of the answer being applied (skillWork.rk views into it)
-	work              []skillWork
+	kbuf, vbuf, lkbuf, rkbuf []byte
+	work                     []skillWork
 }
 
-type stagedRec struct {
-	key   string // record key (shared by the staged history entries)
-	rec   Record
-	isNew bool
-}
-
-type stagedHist struct {
-	rk  string // record key of the learner-skill
-	opp uint32
-	h   HistoryEntry
-}
-
+// skillWork is one skill of the answer being applied, between the reads
+// (phase 1) and the staging (phase 2) of Apply.
 type skillWork struct {
-	rk        []byte // view into Partition.rkbuf
-	sr        *stagedRec
-	rec       Record
+	skill     string
+	idx       int // index in the stagedLearner's recs; -1 when not staged yet
+	rv        recVal
 	isNew     bool
 	params    Params
 	first     int // index in a.Skills of the first occurrence
@@ -128,8 +116,7 @@ func (s *Store) Partition(p int32) (*Partition, error) {
 		old.fenced.Store(true)
 		s.log.Warn().Int32("partition", p).Msg("partition taken while an older handle was not released; the older one is fenced")
 	}
-	s.recCache.dropPartition(p)
-	s.winCache.dropPartition(p)
+	s.cache.dropPartition(p)
 	st := partState{nextSeq: 1}
 	v, closer, err := s.db.Get(stateKey(p))
 	switch {
@@ -168,8 +155,7 @@ func (s *Store) Partition(p int32) (*Partition, error) {
 		committed: st,
 		staged:    st,
 		batch:     s.db.NewBatch(),
-		recs:      make(map[string]*stagedRec),
-		wins:      make(map[string]*window),
+		learners:  make(map[string]*stagedLearner),
 	}
 	sl.handle = pt
 	return pt, nil
@@ -274,80 +260,90 @@ func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResu
 	}
 
 	// Phase 1: every read that can fail, before anything is staged.
-	pt.wkbuf = windowKey(pt.wkbuf[:0], pt.p, a.Learner)
-	w, wStaged, err := pt.loadWindow(pt.wkbuf)
+	pt.lkbuf = learnerRecordPrefix(pt.lkbuf[:0], pt.p, a.Learner)
+	sl, staged, err := pt.loadLearner(pt.lkbuf)
 	if err != nil {
 		return ApplyResult{}, err
 	}
 	h := idHash(a.ID)
-	if w.contains(h) {
+	if sl.win.contains(h) {
+		if !staged {
+			pt.recycle(sl)
+		}
 		pt.advance(offset)
 		s.duplicates.Add(1)
 		return ApplyResult{Duplicate: true}, nil
 	}
 	at := a.At.UnixNano()
-	res := ApplyResult{Late: w.hasAt && at < w.lastAt, PCorrect: make([]float64, len(a.Skills))}
+	res := ApplyResult{Late: sl.win.hasAt && at < sl.win.lastAt, PCorrect: make([]float64, len(a.Skills))}
 
 	pt.work = pt.work[:0]
-	kb := pt.rkbuf[:0]
 	for i, skill := range a.Skills {
 		if dupSkill(a.Skills[:i], skill) {
 			continue
 		}
 		p, v := params.For(skill)
-		start := len(kb)
-		kb = recordKey(kb, pt.p, a.Learner, skill)
-		sw := skillWork{params: p, first: i}
-		sw.rk = kb[start:len(kb):len(kb)]
-		if err := pt.loadRecord(&sw, v); err != nil {
-			return ApplyResult{}, err
+		sw := skillWork{skill: skill, idx: sl.staged(skill), params: p, first: i}
+		switch j, ok := sl.base.find(skill); {
+		case sw.idx >= 0:
+			sw.rv = sl.recs[sw.idx].rv
+		case ok:
+			sw.rv = sl.base.recs[j]
+		default:
+			sw.rv, sw.isNew = recVal{rec: NewRecord(p, v)}, true
 		}
-		if sw.rec.ParamsVersion != v {
-			if sw.rec.Opportunities > 0 {
-				rec, err := pt.rederive(sw.rk, p, v, sw.rec.Opportunities)
+		if sw.rv.rec.ParamsVersion != v {
+			if sw.rv.rec.Opportunities > 0 {
+				rec, err := pt.rederive(sl, &sw, p, v)
 				if err != nil {
+					if !staged {
+						pt.recycle(sl)
+					}
 					return ApplyResult{}, err
 				}
-				sw.rec, sw.rederived = rec, true
+				sw.rv.rec, sw.rederived = rec, true
 			} else {
-				sw.rec = NewRecord(p, v)
+				sw.rv.rec = NewRecord(p, v)
 			}
 		}
 		pt.work = append(pt.work, sw)
 	}
-	pt.rkbuf = kb
 
 	// Phase 2: stage. Nothing below can fail.
 	pol := s.opt.Policy
 	for k := range pt.work {
 		sw := &pt.work[k]
-		out := sw.rec.Apply(sw.params, a.Correct, at, pol)
-		res.PCorrect[sw.first] = out.PCorrect
-		if sw.rederived {
-			res.Rederived++
-		}
-		if sw.sr == nil {
-			sw.sr = &stagedRec{key: string(sw.rk), isNew: sw.isNew}
-			pt.recs[sw.sr.key] = sw.sr
+		if sw.idx < 0 {
+			sl.recs = append(sl.recs, stagedRec{skill: sw.skill, isNew: sw.isNew})
+			sw.idx = len(sl.recs) - 1
 			if sw.isNew {
 				pt.staged.records++
 			}
 		}
-		sw.sr.rec = sw.rec
-		he := HistoryEntry{At: at, Correct: a.Correct}
-		pt.kbuf = historyKeyFromRecordKey(pt.kbuf[:0], sw.rk, sw.rec.Opportunities)
-		pt.vbuf = appendHistory(pt.vbuf[:0], he)
-		pt.set(pt.kbuf, pt.vbuf)
-		pt.hist = append(pt.hist, stagedHist{rk: sw.sr.key, opp: sw.rec.Opportunities, h: he})
+		sr := &sl.recs[sw.idx]
+		sr.rv = sw.rv
+		rv := &sr.rv
+		out := rv.rec.Apply(sw.params, a.Correct, at, pol)
+		res.PCorrect[sw.first] = out.PCorrect
+		if sw.rederived {
+			res.Rederived++
+		}
+		rv.push(HistoryEntry{At: at, Correct: a.Correct})
+		if rv.tailN >= tailMaxAnswers || len(rv.tail) >= tailMaxBytes {
+			sr.chunks = append(sr.chunks, histChunk{first: rv.rec.Opportunities - rv.tailN + 1, n: rv.tailN, entries: rv.tail})
+			rv.tail, rv.tailN, rv.prevAt = nil, 0, 0
+		}
+		if k == 0 {
+			sl.carrier = sw.idx
+		}
 		for _, kind := range [2]Kind{KindReached, KindStuck} {
 			if (kind == KindReached && !out.Reached) || (kind == KindStuck && !out.Stuck) {
 				continue
 			}
-			skill := a.Skills[sw.first]
 			o := Output{
-				Kind: kind, Learner: a.Learner, Skill: skill, Mastery: sw.rec.Mastery,
-				Opportunities: sw.rec.Opportunities, ParamsVersion: sw.rec.ParamsVersion,
-				AnswerID: a.ID, At: a.At, ID: EventID(a.Learner, skill, kind, sw.rec.Opportunities),
+				Kind: kind, Learner: a.Learner, Skill: sw.skill, Mastery: rv.rec.Mastery,
+				Opportunities: rv.rec.Opportunities, ParamsVersion: rv.rec.ParamsVersion,
+				AnswerID: a.ID, At: a.At, ID: EventID(a.Learner, sw.skill, kind, rv.rec.Opportunities),
 			}
 			pt.stageOutbox(&OutboxEntry{Output: &o})
 			res.Outputs = append(res.Outputs, o)
@@ -355,15 +351,15 @@ func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResu
 	}
 	for i, skill := range a.Skills {
 		for k := range pt.work {
-			if a.Skills[pt.work[k].first] == skill {
+			if pt.work[k].skill == skill {
 				res.PCorrect[i] = res.PCorrect[pt.work[k].first]
 				break
 			}
 		}
 	}
-	w.add(h, at, s.opt.DedupeWindow)
-	if !wStaged {
-		pt.wins[string(pt.wkbuf)] = w
+	sl.win.add(h, at, s.opt.DedupeWindow)
+	if !staged {
+		pt.learners[sl.key] = sl
 	}
 	pt.advance(offset)
 	s.applied.Add(1)
@@ -401,76 +397,34 @@ func (pt *Partition) stageOutbox(e *OutboxEntry) {
 	pt.outboxN++
 }
 
-// loadWindow returns the learner's window: staged (the overlay's own,
-// staged=true), else a copy of the cached or stored one, else a new one.
-func (pt *Partition) loadWindow(wk []byte) (w *window, staged bool, err error) {
-	if w := pt.wins[string(wk)]; w != nil {
-		return w, true, nil
-	}
-	if cw, ok := pt.s.winCache.get(pt.p, wk); ok {
-		c := cw.clone()
-		return &c, false, nil
-	}
-	v, closer, err := pt.s.db.Get(wk)
-	if errors.Is(err, pebble.ErrNotFound) {
-		return &window{}, false, nil
-	}
-	if err != nil {
-		return nil, false, fmt.Errorf("attain: partition %d: reading id window %q: %w", pt.p, wk, err)
-	}
-	defer closer.Close()
-	dw, err := decodeWindow(v)
-	if err != nil {
-		return nil, false, fmt.Errorf("attain: partition %d: id window %q: %w", pt.p, wk, err)
-	}
-	return &dw, false, nil
-}
-
-// loadRecord fills sw from the staging, the cache or Pebble; a record that
-// exists nowhere is NewRecord(sw.params, v).
-func (pt *Partition) loadRecord(sw *skillWork, v int64) error {
-	if sr := pt.recs[string(sw.rk)]; sr != nil {
-		sw.sr, sw.rec = sr, sr.rec
-		return nil
-	}
-	if r, ok := pt.s.recCache.get(pt.p, sw.rk); ok {
-		sw.rec = r
-		return nil
-	}
-	val, closer, err := pt.s.db.Get(sw.rk)
-	if errors.Is(err, pebble.ErrNotFound) {
-		sw.rec, sw.isNew = NewRecord(sw.params, v), true
-		return nil
-	}
-	if err != nil {
-		return fmt.Errorf("attain: partition %d: reading record %q: %w", pt.p, sw.rk, err)
-	}
-	defer closer.Close()
-	sw.rec, err = decodeRecord(val)
-	if err != nil {
-		return fmt.Errorf("attain: partition %d: record %q: %w", pt.p, sw.rk, err)
-	}
-	return nil
-}
-
-// rederive replays the learner-skill's history (committed, then staged)
-// under p from NewRecord(p, v), emitting nothing.
-func (pt *Partition) rederive(rk []byte, p Params, v int64, want uint32) (Record, error) {
+// rederive replays the learner-skill's whole history under p from
+// NewRecord(p, v), emitting nothing: the committed history keys, the
+// chunks staged since the last commit, then the tail of the record as
+// loaded (staged, cached or stored: the history keys committed with it
+// precede it).
+func (pt *Partition) rederive(sl *stagedLearner, sw *skillWork, p Params, v int64) (Record, error) {
+	pt.rkbuf = append(append(pt.rkbuf[:0], sl.key...), sw.skill...)
+	rk, want := pt.rkbuf, sw.rv.rec.Opportunities
 	rec := NewRecord(p, v)
 	pol := pt.s.opt.Policy
 	var n uint32
-	err := pt.s.historyOf(pt.s.db, rk, func(h HistoryEntry) {
+	apply := func(h HistoryEntry) {
 		rec.Apply(p, h.Correct, h.At, pol)
 		n++
-	})
+	}
+	err := pt.s.historyKeys(pt.s.db, rk, apply)
+	if err == nil && sw.idx >= 0 {
+		for _, c := range sl.recs[sw.idx].chunks {
+			if _, err = forHistEntries(c.entries, uint64(c.n), apply); err != nil {
+				break
+			}
+		}
+	}
+	if err == nil {
+		_, err = forHistEntries(sw.rv.tail, uint64(sw.rv.tailN), apply)
+	}
 	if err != nil {
 		return Record{}, fmt.Errorf("attain: partition %d: re-deriving %q: %w", pt.p, rk, err)
-	}
-	for i := range pt.hist {
-		if pt.hist[i].rk == string(rk) {
-			rec.Apply(p, pt.hist[i].h.Correct, pt.hist[i].h.At, pol)
-			n++
-		}
 	}
 	if n != want {
 		pt.s.log.Error().Int32("partition", pt.p).Bytes("record", rk).Uint32("history", n).Uint32("opportunities", want).
@@ -514,13 +468,14 @@ func (pt *Partition) Skip(offset int64) error {
 	return nil
 }
 
-// Commit writes everything staged — records, history, id windows, outbox
-// entries and the consumed offset — in one atomic Pebble batch; with sync
-// it waits for the WAL to reach the disk (pebble.Sync), otherwise it does
-// not (pebble.NoSync: a crash may lose the tail of commits, which replay
-// from the stored offset restores, since the offset is in the same batch).
-// Nothing staged: no write. On error the staging is dropped (the handle
-// stays usable; resume from NextOffset).
+// Commit writes everything staged — records (with their history tails and
+// the learners' id windows), history chunks, outbox entries and the
+// consumed offset — in one atomic Pebble batch; with sync it waits for the
+// WAL to reach the disk (pebble.Sync), otherwise it does not (pebble.NoSync:
+// a crash may lose the tail of commits, which replay from the stored offset
+// restores, since the offset is in the same batch). Nothing staged: no
+// write. On error the staging is dropped (the handle stays usable; resume
+// from NextOffset).
 func (pt *Partition) Commit(sync bool) error {
 	s := pt.s
 	s.closeMu.RLock()
@@ -541,15 +496,30 @@ func (pt *Partition) Commit(sync bool) error {
 	s.parts[pt.p] = struct{}{} // before the commit, so readers that list partitions after opening an iterator see it
 	s.mu.Unlock()
 
-	for k, sr := range pt.recs {
-		pt.vbuf = appendRecord(pt.vbuf[:0], sr.rec)
-		pt.kbuf = append(pt.kbuf[:0], k...)
-		pt.set(pt.kbuf, pt.vbuf)
-	}
-	for k, w := range pt.wins {
-		pt.vbuf = appendWindow(pt.vbuf[:0], w)
-		pt.kbuf = append(pt.kbuf[:0], k...)
-		pt.set(pt.kbuf, pt.vbuf)
+	for _, sl := range pt.learners {
+		for i := range sl.recs {
+			sr := &sl.recs[i]
+			pt.rkbuf = append(append(pt.rkbuf[:0], sl.key...), sr.skill...)
+			for _, c := range sr.chunks {
+				pt.kbuf = historyKeyFromRecordKey(pt.kbuf[:0], pt.rkbuf, c.first)
+				pt.vbuf = appendHistoryChunk(pt.vbuf[:0], c.n, c.entries)
+				pt.set(pt.kbuf, pt.vbuf)
+			}
+			var w *window
+			if i == sl.carrier {
+				w = &sl.win
+			}
+			pt.vbuf = appendRecordVal(pt.vbuf[:0], &sr.rv, w)
+			pt.set(pt.rkbuf, pt.vbuf)
+		}
+		if sl.base.legacyWin {
+			// The window now lives in a record: the schema 1 window key goes.
+			pt.kbuf = appendPartFamily(pt.kbuf[:0], uint32(pt.p), famWindow)
+			pt.kbuf = append(pt.kbuf, sl.key[partPrefixLen:len(sl.key)-1]...)
+			if err := pt.batch.Delete(pt.kbuf, nil); err != nil {
+				panic(fmt.Sprintf("attain: staging into partition %d's batch: %v", pt.p, err))
+			}
+		}
 	}
 	pt.vbuf = appendPartState(pt.vbuf[:0], pt.staged)
 	pt.set(stateKey(pt.p), pt.vbuf)
@@ -557,18 +527,21 @@ func (pt *Partition) Commit(sync bool) error {
 	if sync {
 		wo = pebble.Sync
 	}
+	// The depth counts the new entries before they are visible, so that a
+	// publisher deleting them as soon as they are (from another goroutine)
+	// never takes it below the true number: OutboxDepth() == 0 means the
+	// outbox is empty.
+	s.depth.Add(pt.outboxN)
 	if err := pt.batch.Commit(wo); err != nil {
+		s.depth.Add(-pt.outboxN)
 		s.commitFailures.Add(1)
 		pt.dropStaging()
 		return fmt.Errorf("attain: committing partition %d (%d offsets up to %d): %w", pt.p, pt.pending, pt.staged.offset, err)
 	}
-	for k, sr := range pt.recs {
-		s.recCache.put(pt.p, k, sr.rec)
+	for _, sl := range pt.learners {
+		lv := sl.committed()
+		s.cache.put(pt.p, sl.key, lv, len(lv.recs))
 	}
-	for k, w := range pt.wins {
-		s.winCache.put(pt.p, k, *w)
-	}
-	s.depth.Add(pt.outboxN)
 	s.records.Add(int64(pt.staged.records) - int64(pt.committed.records))
 	s.commits.Add(1)
 	pt.committed = pt.staged
@@ -586,15 +559,14 @@ func (pt *Partition) dropStaging() {
 	}
 	pt.staged = pt.committed
 	pt.clearStaging()
-	pt.s.recCache.dropPartition(pt.p)
-	pt.s.winCache.dropPartition(pt.p)
+	pt.s.cache.dropPartition(pt.p)
 }
 
 func (pt *Partition) clearStaging() {
-	clear(pt.recs)
-	clear(pt.wins)
-	clear(pt.hist)
-	pt.hist = pt.hist[:0]
+	for k, sl := range pt.learners {
+		delete(pt.learners, k)
+		pt.recycle(sl)
+	}
 	pt.pending = 0
 	pt.outboxN = 0
 }
@@ -613,8 +585,7 @@ func (pt *Partition) Release() {
 	}
 	pt.staged = pt.committed
 	pt.clearStaging()
-	pt.s.recCache.dropPartition(pt.p)
-	pt.s.winCache.dropPartition(pt.p)
+	pt.s.cache.dropPartition(pt.p)
 	pt.slot.mu.Lock()
 	if pt.slot.handle == pt {
 		pt.slot.handle = nil

@@ -212,8 +212,9 @@ func (pr *Processor) partition(run, fence context.Context, gen *kafka.Generation
 
 	// Outputs committed by an earlier owner (or before a crash) go out
 	// before anything new is consumed.
-	r.dirty = true
-	r.drain(stop)
+	r.pump = newOutboxPump(r)
+	r.pump.dirty = true
+	r.pump.drain(stop)
 
 	next, err := r.resume(stop)
 	if err != nil {
@@ -245,7 +246,13 @@ func (pr *Processor) partition(run, fence context.Context, gen *kafka.Generation
 	pr.m.SetResumed(p)
 	log.Info().Int64("offset", next).Msg("consuming")
 
+	// The outbox is published by the pump goroutine, beside consumption:
+	// a batch's outputs are sent while the next batch is read and applied.
+	pumpCtx, stopPump := context.WithCancel(stop)
+	go r.pump.run(pumpCtx)
 	err = r.loop(stop)
+	stopPump()
+	<-r.pump.done
 	if err == nil {
 		err = r.finish()
 	}
@@ -274,11 +281,10 @@ type partitionRun struct {
 
 	opened time.Time // first message of the batch in hand; zero when none
 
-	dirty     bool          // the outbox may hold entries not yet published
-	retryAt   time.Time     // earliest time of the next drain after a failure
-	backoff   time.Duration // after the last failed drain
-	lastGroup time.Time     // last Kafka group-offset commit
-	groupSent int64         // offset last committed to the group
+	pump      *outboxPump
+	outputs   bool      // the batch in hand staged outbox entries
+	lastGroup time.Time // last Kafka group-offset commit
+	groupSent int64     // offset last committed to the group
 	window    context.Context
 	cancelWin context.CancelFunc
 	windowDue time.Time
@@ -351,7 +357,6 @@ func (r *partitionRun) loop(stop context.Context) error {
 			if err := r.commit(false, now); err != nil {
 				return err
 			}
-			r.publish(now)
 		}
 	}
 }
@@ -381,7 +386,7 @@ func (r *partitionRun) handle(msg *kafka.Message) error {
 				pr.m.Rederived.Add(int64(res.Rederived))
 			}
 			if len(res.Outputs) > 0 {
-				r.dirty = true
+				r.outputs = true
 			}
 		case errors.Is(err, state.ErrBadAnswer):
 			rej = rejectionOf(err, ReasonUnprocessed, ReasonUnprocessed)
@@ -398,7 +403,7 @@ func (r *partitionRun) handle(msg *kafka.Message) error {
 			return fmt.Errorf("attain: dead-lettering %s/%d@%d: %w", msg.Topic, msg.Partition, msg.Offset, err)
 		}
 		pr.m.DeadLettered.Add(1)
-		r.dirty = true
+		r.outputs = true
 		r.log.Warn().Int64("offset", msg.Offset).Str("reason", dl.Reason).Str("field", dl.Field).Msg("input rejected to the dead-letter topic")
 	}
 	r.next = msg.Offset + 1
@@ -410,8 +415,8 @@ func (r *partitionRun) handle(msg *kafka.Message) error {
 	return nil
 }
 
-// openWindow makes the next fetches return by due (a commit or a retry is
-// owed then). One context serves a whole batch, not one per message.
+// openWindow makes the next fetches return by due (a commit is owed
+// then). One context serves a whole batch, not one per message.
 func (r *partitionRun) openWindow(due time.Time) {
 	if r.window != nil && !due.Before(r.windowDue) {
 		return
@@ -428,31 +433,13 @@ func (r *partitionRun) closeWindow() {
 	r.window, r.cancelWin = nil, nil
 }
 
-// tick runs when the window ends: commit what is staged and retry a
-// failed drain that is due.
+// tick runs when the window ends: commit what is staged.
 func (r *partitionRun) tick(now time.Time) error {
 	r.closeWindow()
 	if r.staged > 0 {
-		if err := r.commit(false, now); err != nil {
-			return err
-		}
+		return r.commit(false, now)
 	}
-	r.publish(now)
 	return nil
-}
-
-// publish drains the outbox when it may hold entries and no failed drain
-// is waiting for its retry time; a pending retry keeps a window open so
-// that it happens even when no message arrives.
-func (r *partitionRun) publish(now time.Time) {
-	if r.dirty && !now.Before(r.retryAt) {
-		// stop, not just the fence: a shutdown abandons a slow write here,
-		// and finish drains again within DrainTimeout.
-		r.drain(r.stop)
-	}
-	if r.dirty {
-		r.openWindow(r.retryAt)
-	}
 }
 
 // commit writes the batch in hand to the store as one atomic batch, then
@@ -469,6 +456,10 @@ func (r *partitionRun) commit(sync bool, now time.Time) error {
 		pr.m.Commits.Add(1)
 		r.staged = 0
 		r.opened = time.Time{}
+		if r.outputs {
+			r.outputs = false
+			r.pump.kick()
+		}
 		if r.hwm > 0 {
 			pr.m.SetLag(r.p, max(0, r.hwm-r.next))
 		}
@@ -486,24 +477,104 @@ func (r *partitionRun) commit(sync bool, now time.Time) error {
 	return nil
 }
 
-// drain publishes the partition's outbox; a failure is retried later with
-// a growing backoff while consumption goes on, so a slow or unreachable
-// output topic never stalls the partition (the outbox holds the entries).
-func (r *partitionRun) drain(fence context.Context) {
+// outboxPump publishes one partition's committed outbox from its own
+// goroutine, owned by the partition's goroutine (which starts it after the
+// first drain and stops it, and waits for it, before finishing). A commit
+// with outputs kicks it; a failed drain is retried with a growing backoff
+// while consumption goes on, so a slow or unreachable output topic never
+// stalls the partition (the outbox holds the entries).
+type outboxPump struct {
+	r    *partitionRun
+	kc   chan struct{} // capacity 1: a kick while draining is kept, not lost
+	done chan struct{} // closed when run returns
+
+	// Owned by the goroutine that drains: the partition's before run and
+	// after done, the pump's in between.
+	dirty   bool          // the outbox may hold entries not yet published
+	retryAt time.Time     // earliest time of the next drain after a failure
+	backoff time.Duration // after the last failed drain
+}
+
+func newOutboxPump(r *partitionRun) *outboxPump {
+	return &outboxPump{r: r, kc: make(chan struct{}, 1), done: make(chan struct{})}
+}
+
+// kick says that committed outbox entries are waiting. It never blocks.
+func (pm *outboxPump) kick() {
+	select {
+	case pm.kc <- struct{}{}:
+	default:
+	}
+}
+
+// pending reports, once run has returned, whether the outbox may hold
+// entries not yet published (a failed or abandoned drain, or a kick not
+// taken).
+func (pm *outboxPump) pending() bool {
+	select {
+	case <-pm.kc:
+		pm.dirty = true
+	default:
+	}
+	return pm.dirty
+}
+
+// run drains whenever kicked, and retries a failed drain when due, until
+// ctx ends (the partition stops, or its generation ends: ctx ends no later
+// than the fence, so a write in flight is abandoned then).
+func (pm *outboxPump) run(ctx context.Context) {
+	defer close(pm.done)
+	retry := time.NewTimer(time.Hour)
+	retry.Stop()
+	defer retry.Stop()
+	if pm.dirty {
+		// The drain before consumption failed.
+		retry.Reset(time.Until(pm.retryAt))
+	}
+	for {
+		select {
+		case <-ctx.Done():
+			return
+		case <-pm.kc:
+			pm.dirty = true
+		case <-retry.C:
+		}
+		if !pm.dirty {
+			continue
+		}
+		if wait := time.Until(pm.retryAt); wait > 0 {
+			retry.Reset(wait)
+			continue
+		}
+		pm.drain(ctx)
+		if ctx.Err() != nil {
+			return
+		}
+		if pm.dirty {
+			retry.Reset(time.Until(pm.retryAt))
+		}
+	}
+}
+
+// drain publishes the partition's outbox once; a failure sets the backoff
+// and the time of the next attempt.
+func (pm *outboxPump) drain(fence context.Context) {
+	r := pm.r
 	n, err := r.pr.pub.Drain(fence, r.p)
 	switch {
 	case err == nil:
-		r.dirty = false
-		r.backoff = 0
+		pm.dirty = false
+		pm.backoff = 0
 		if n > 0 {
 			r.log.Debug().Int("entries", n).Msg("published outbox")
 		}
 	case errors.Is(err, ErrFenced):
-		// The generation ended; the next owner publishes the rest.
+		// The generation ended (or the partition is stopping); the next
+		// owner, or finish, publishes the rest.
 	default:
-		r.backoff = min(max(2*r.backoff, 250*time.Millisecond), 30*time.Second)
-		r.retryAt = time.Now().Add(r.backoff)
-		r.log.Warn().Err(err).Int("sent", n).Dur("retry_in", r.backoff).Msg("publishing the outbox failed; entries are kept and sent again")
+		pm.backoff = min(max(2*pm.backoff, 250*time.Millisecond), 30*time.Second)
+		pm.retryAt = time.Now().Add(pm.backoff)
+		r.log.Warn().Err(err).Int("sent", n).Dur("retry_in", pm.backoff).Msg("publishing the outbox failed; entries are kept and sent again")
 	}
 }
 
@@ -519,9 +590,9 @@ func (r *partitionRun) finish() error {
 		r.log.Info().Int64("offset", r.next).Msg("partition revoked")
 		return nil
 	}
-	if r.dirty {
+	if r.pump.pending() {
 		ctx, cancel := context.WithTimeout(r.fence, r.pr.opt.DrainTimeout)
-		r.drain(ctx)
+		r.pump.drain(ctx)
 		cancel()
 	}
 	r.log.Info().Int64("offset", r.next).Msg("partition stopped")

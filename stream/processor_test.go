@@ -139,6 +139,15 @@ func checkCloudEvent(t *testing.T, ce CloudEvent, key string) {
 
 // checkOffsetsCommitted checks that every partition of the answers topic
 // has its stored next offset at the end of its log.
+// assignedSome reports whether m's member holds partitions of the current
+// generation and all of them have resumed.
+func assignedSome(m *Metrics) bool {
+	m.mu.Lock()
+	n := len(m.mu.assigned)
+	m.mu.Unlock()
+	return n > 0 && m.Ready()
+}
+
 func checkOffsetsCommitted(t *testing.T, addr string, st *state.Store) {
 	t.Helper()
 	ends := logEnds(t, addr, tAnswers)
@@ -321,8 +330,22 @@ func TestRebalance(t *testing.T) {
 	a := startProcessor(t, b.Addr(), st, reg, opt)
 	waitFor(t, 30*time.Second, "the first member consuming", func() bool { return a.m.Consumed.Load() > 0 })
 	c := startProcessor(t, b.Addr(), st, reg, opt)
-	produce(t, b.Addr(), tAnswers, msgs[third:2*third])
-	waitFor(t, 30*time.Second, "the second member assigned", func() bool { return c.m.Ready() && c.m.Consumed.Load() > 0 })
+	// Answers keep arriving while the group rebalances, so that the first
+	// member is revoked with work in hand; half of the second third is held
+	// back until the second member has its partitions, so that it has
+	// answers of its own to consume however fast the first member was
+	// (the first member alone can consume all of the rest before the
+	// rebalance completes).
+	second := msgs[third : 2*third]
+	sent := 0
+	for sent < len(second)/2 && !assignedSome(c.m) {
+		n := min(len(second)/2-sent, 20)
+		produce(t, b.Addr(), tAnswers, second[sent:sent+n])
+		sent += n
+	}
+	waitFor(t, 30*time.Second, "the second member assigned", func() bool { return assignedSome(c.m) })
+	produce(t, b.Addr(), tAnswers, second[sent:])
+	waitFor(t, 30*time.Second, "the second member consuming", func() bool { return c.m.Ready() && c.m.Consumed.Load() > 0 })
 	a.stop(t)
 	produce(t, b.Addr(), tAnswers, msgs[2*third:])
 	waitFor(t, 60*time.Second, "every answer applied and published", func() bool {

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"sync"
 	"time"
 
 	"github.com/rs/zerolog"
@@ -46,6 +47,14 @@ type Publisher struct {
 	opt PublisherOptions
 	tr  *kafka.Transport
 	w   *kafka.Writer
+
+	// acked holds, per partition, the last outbox number this publisher
+	// has had acknowledged and deleted. Numbers are never reused and only
+	// ever deleted, so every entry up to it is gone: reading resumes after
+	// it instead of stepping over the deletions' tombstones from the
+	// start of the outbox each time.
+	mu    sync.Mutex
+	acked map[int32]uint64
 }
 
 // ErrConfig is wrapped by errors about options the stream package was
@@ -96,7 +105,7 @@ func NewPublisher(st *state.Store, m *Metrics, opt PublisherOptions) (*Publisher
 			opt.Logger.Warn().Str("component", "publisher").Msgf(f, a...)
 		}),
 	}
-	return &Publisher{st: st, m: m, opt: opt, tr: tr, w: w}, nil
+	return &Publisher{st: st, m: m, opt: opt, tr: tr, w: w, acked: make(map[int32]uint64)}, nil
 }
 
 // Drain sends partition p's committed outbox entries, in order, until the
@@ -110,7 +119,10 @@ func (pb *Publisher) Drain(fence context.Context, p int32) (int, error) {
 		if fence.Err() != nil {
 			return sent, ErrFenced
 		}
-		entries, err := pb.st.Outbox(p, 0, pb.opt.Chunk)
+		pb.mu.Lock()
+		after := pb.acked[p]
+		pb.mu.Unlock()
+		entries, err := pb.st.Outbox(p, after, pb.opt.Chunk)
 		if err != nil {
 			return sent, fmt.Errorf("attain: reading the outbox of partition %d: %w", p, err)
 		}
@@ -157,6 +169,9 @@ func (pb *Publisher) Drain(fence context.Context, p int32) (int, error) {
 		if err := pb.st.DeleteOutbox(p, seqs); err != nil {
 			return sent, fmt.Errorf("attain: deleting %d published outbox entries of partition %d: %w", len(seqs), p, err)
 		}
+		pb.mu.Lock()
+		pb.acked[p] = max(pb.acked[p], seqs[len(seqs)-1])
+		pb.mu.Unlock()
 		pb.m.PublishedReached.Add(reached)
 		pb.m.PublishedStuck.Add(stuck)
 		pb.m.PublishedDeadLetters.Add(dead)

@@ -28,7 +28,12 @@ const (
 // testLogger writes to the test log when -v is given, else nowhere.
 func testLogger(t testing.TB) zerolog.Logger {
 	if testing.Verbose() {
-		return zerolog.New(zerolog.ConsoleWriter{Out: tlogWriter{t}, NoColor: true}).Level(zerolog.InfoLevel).With().Timestamp().Logger()
+		// Milliseconds in the time stamps (zerolog's own Timestamp has
+		// whole seconds), to follow rebalances and commits.
+		cw := zerolog.ConsoleWriter{Out: tlogWriter{t}, NoColor: true, TimeFormat: "15:04:05.000"}
+		return zerolog.New(cw).Level(zerolog.InfoLevel).Hook(zerolog.HookFunc(func(e *zerolog.Event, _ zerolog.Level, _ string) {
+			e.Str(zerolog.TimestampFieldName, time.Now().Format(time.RFC3339Nano))
+		}))
 	}
 	return zerolog.New(io.Discard)
 }

@@ -39,18 +39,18 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	fs.SetOutput(stderr)
 	fs.Usage = func() {
 		fmt.Fprintln(stderr, "usage: attain replay --from FILE|topic:NAME --out DIR [--params FILE|topic:NAME]... [--threshold X]... [--stuck-after N]... [--order at|arrival] [--dedupe-window N] [--items FILE] [--brokers LIST] [--config FILE]")
-		fmt.Fprintln(stderr, "\nRuns answer history through the model without touching any store, consumer group or offset, and writes DIR/predictions.csv (the prediction before every answer), DIR/events.csv (the reached/stuck events the first parameter set and thresholds would have raised), DIR/metrics.json and DIR/report.html. --threshold and --stuck-after may be repeated to compare thresholds; --params may be repeated to compare parameter sets on the same history.\n\nflags:")
+		fmt.Fprintln(stderr, "\nRuns answer history through the model without touching any store, consumer group or offset, and writes DIR/predictions.csv (the prediction before every answer), DIR/events.csv (the reached/stuck events the first parameter set and thresholds would have raised), DIR/metrics.json and DIR/report.html. --threshold and --stuck-after may be repeated to compare thresholds (every combination is replayed); --params may be repeated to compare parameter sets on the same history. Learners' state is kept in memory: nothing outside DIR is written, no consumer group is joined. A file whose answers are in time order per learner is streamed; one that is not, standard input, and a topic are held in memory (about 80 bytes an answer) to be put in order.\n\nflags:")
 		fs.PrintDefaults()
 	}
 	var params, thresholds, stuckAfters listFlag
 	from := fs.String("from", "", "answer history: a JSON-lines file of native v1 events (\"-\" = standard input), or topic:NAME")
 	out := fs.String("out", "", "folder to write predictions.csv, events.csv, metrics.json and report.html to (created if missing)")
-	fs.Var(&params, "params", "parameter set: a parameter file, or topic:NAME (the params topic read to its end); repeat to compare sets (default: the config's params file, else the built-in defaults)")
+	fs.Var(&params, "params", "parameter set: a parameter file, or topic:NAME (the params topic read to its end); repeat to compare sets (default: what the processor would use — the config's params file, or its params topic when params_from_topic is set — else the built-in defaults)")
 	fs.Var(&thresholds, "threshold", "mastery threshold in (0, 1]; repeat for a what-if comparison (default: model.threshold of the config, 0.95)")
 	fs.Var(&stuckAfters, "stuck-after", "opportunities without mastery before a stuck flag (0 = never); repeat for a what-if comparison (default: model.stuck_after of the config, 10)")
-	order := fs.String("order", string(fitjob.OrderAt), "order of a file's answers per learner: \"at\" (by time, ties in file order) or \"arrival\" (file order, as the processor applies a topic)")
+	order := fs.String("order", string(fitjob.OrderAt), "order of a file's answers per learner: \"at\" (by time, ties in file order) or \"arrival\" (file order, as the processor applies a topic); a topic is always replayed in arrival order")
 	dedupe := fs.Int("dedupe-window", 0, "applied answer ids remembered per learner to skip repeats (default: consumer.dedupe_window of the config, 32)")
-	items := fs.String("items", "", "item map, JSON {\"item\": [\"skill\", ...]}, for events that name an item but no skills")
+	items := fs.String("items", "", "item map, JSON {\"item\": [\"skill\", ...]}, for events that name an item but no skills (default: items_file of the config)")
 	brokers := fs.String("brokers", "", "Kafka bootstrap brokers (comma list) for topic: sources (default: brokers of the config)")
 	configPath := fs.String("config", "", "YAML config file for defaults (model thresholds, dedupe window, brokers, params file)")
 	listed := fs.Int("list-rejected", fitjob.DefaultRejectsListed, "rejected records to list in metrics.json and the report (all are counted)")
@@ -92,8 +92,15 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err != nil {
 		return err
 	}
-	if len(params) == 0 && cfg.Params != "" {
-		params = listFlag{cfg.Params}
+	if len(params) == 0 {
+		// The set the processor would run under: the config's params file,
+		// with the params topic laid over it when it follows the topic.
+		switch {
+		case cfg.ParamsFromTopic:
+			params = listFlag{"topic:" + cfg.Topics.Params}
+		case cfg.Params != "":
+			params = listFlag{cfg.Params}
+		}
 	}
 	var sets []fitjob.NamedParams
 	for _, p := range params {
@@ -120,6 +127,9 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if opt.RejectsListed == 0 {
 		opt.RejectsListed = -1 // count only
 	}
+	if *items == "" {
+		*items = cfg.ItemsFile
+	}
 	if *items != "" {
 		m, err := loadItemMap(*items)
 		if err != nil {
@@ -129,8 +139,13 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	}
 	kind, rest, isTopic := strings.Cut(*from, ":")
 	isTopic = isTopic && kind == "topic"
-	if isTopic && *order == string(fitjob.OrderAt) && !flagSet(fs, "order") {
-		opt.Order = fitjob.OrderArrival // a topic is in arrival order
+	if isTopic {
+		// A topic is applied in arrival (offset) order, as the processor
+		// applies it (ARCHITECTURE.md, Ordering).
+		if flagSet(fs, "order") && *order != string(fitjob.OrderArrival) {
+			return fmt.Errorf("--order %s with --from %s: a topic is replayed in arrival order, as the processor applies it; fix: leave out --order (or give --order arrival)", *order, *from)
+		}
+		opt.Order = fitjob.OrderArrival
 	}
 	rp, err := fitjob.NewReplay(opt)
 	if err != nil {
@@ -142,8 +157,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	var res *fitjob.ReplayResult
 	switch {
 	case isTopic:
-		err = fmt.Errorf("--from %s: reading a topic from its start is not available in this build yet (the topic source is pending); export the topic to a JSON-lines file and give its path", *from)
-		_ = rest
+		res, err = replayTopic(ctx, rp, rest, opt.Decoder, cfg, log)
 	default:
 		path := *from
 		if kind == "file" {
@@ -170,6 +184,31 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	}
 	fmt.Fprintf(stdout, "report: %s\n", reportPath)
 	return nil
+}
+
+// replayTopic replays a topic from its earliest retained offset to the end
+// it had at the start, without a consumer group (nothing is committed).
+func replayTopic(ctx context.Context, rp *fitjob.Replay, topic string, dec state.NativeDecoder, cfg config.Config, log zerolog.Logger) (*fitjob.ReplayResult, error) {
+	if topic == "" {
+		topic = cfg.Topics.Answers
+	}
+	if len(cfg.Brokers) == 0 {
+		return nil, fmt.Errorf("--from topic:%s: no brokers to read the topic from; give --brokers host:port (or brokers in the config)", topic)
+	}
+	src, err := stream.NewTopicSource(stream.TopicSourceOptions{
+		Brokers: cfg.Brokers, Topic: topic, Decoder: &dec, MaxEventBytes: cfg.Consumer.MaxEventBytes, Logger: log,
+		Reject: func(r stream.TopicReject) {
+			reason := r.Code
+			if r.Detail != "" {
+				reason += ": " + r.Detail
+			}
+			rp.Reject(fitjob.RejectedRecord{Partition: int32(r.Partition), Offset: r.Offset, Field: r.Field, Reason: reason})
+		},
+	})
+	if err != nil {
+		return nil, err
+	}
+	return rp.RunSource(ctx, src)
 }
 
 func flagSet(fs *flag.FlagSet, name string) bool {
@@ -222,7 +261,8 @@ func replayPolicies(cfg config.Config, thresholds, stuckAfters listFlag) ([]stat
 	return pols, nil
 }
 
-// loadReplayParams reads a parameter file, or the params topic to its end.
+// loadReplayParams reads a parameter file, or the params topic to its end
+// laid over the config's params file.
 func loadReplayParams(ctx context.Context, spec string, cfg config.Config, log zerolog.Logger) (fitjob.NamedParams, error) {
 	kind, topic, ok := strings.Cut(spec, ":")
 	if !ok || kind != "topic" {
@@ -238,10 +278,19 @@ func loadReplayParams(ctx context.Context, spec string, cfg config.Config, log z
 	if len(cfg.Brokers) == 0 {
 		return fitjob.NamedParams{}, fmt.Errorf("--params %s: no brokers to read the topic from; give --brokers host:port (or brokers in the config)", spec)
 	}
+	// As the processor does: the topic's skills laid over the config's
+	// params file (or the defaults).
+	var base *state.ParamFile
+	if cfg.Params != "" {
+		var err error
+		if base, err = state.LoadParamFile(cfg.Params); err != nil {
+			return fitjob.NamedParams{}, fmt.Errorf("--params %s: the base set (params of the config): %w", spec, err)
+		}
+	}
 	// A registry below every real version, so that whatever the topic holds
 	// is swapped in.
 	reg := state.NewRegistry(&state.ParamFile{Version: 0, Default: state.DefaultParams(), Skills: map[string]state.SkillParams{}})
-	f := stream.NewParamsFollower(reg, stream.NewMetrics(), stream.ParamsFollowerOptions{Brokers: cfg.Brokers, Topic: topic, Logger: log})
+	f := stream.NewParamsFollower(reg, stream.NewMetrics(), stream.ParamsFollowerOptions{Brokers: cfg.Brokers, Topic: topic, Base: base, Logger: log})
 	if err := f.Start(ctx); err != nil {
 		return fitjob.NamedParams{}, fmt.Errorf("--params %s: %w", spec, err)
 	}
