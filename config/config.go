@@ -69,6 +69,12 @@ type Consumer struct {
 	// DedupeWindow is the number of applied answer ids remembered per
 	// learner.
 	DedupeWindow int `yaml:"dedupe_window"`
+	// SessionTimeout is how long the group coordinator waits for a
+	// member's heartbeat before it declares the member dead and gives its
+	// partitions to the others; HeartbeatInterval is how often a member
+	// sends one (less than SessionTimeout).
+	SessionTimeout    time.Duration `yaml:"session_timeout"`
+	HeartbeatInterval time.Duration `yaml:"heartbeat_interval"`
 }
 
 // Batch bounds a micro-batch: it is committed after Interval or MaxAnswers
@@ -141,6 +147,11 @@ func Default() Config {
 			Start:         "earliest",
 			MaxEventBytes: 64 << 10,
 			DedupeWindow:  32,
+			// The Java client's defaults of session.timeout.ms (before
+			// Kafka 3.0) and heartbeat.interval.ms (Apache Kafka consumer
+			// configuration reference; from memory).
+			SessionTimeout:    10 * time.Second,
+			HeartbeatInterval: 3 * time.Second,
 		},
 		// Commit at least every 100 ms or 2000 answers (ARCHITECTURE.md,
 		// Durability).

@@ -75,7 +75,7 @@ func TestFullFixtureValues(t *testing.T) {
 		ParamsFromTopic:    true,
 		EmbeddedBrokerAddr: "127.0.0.1:0",
 		Topics:             Topics{Answers: "harbour-lane.answers", Mastery: "harbour-lane.mastery", Params: "harbour-lane.params", DeadLetter: "harbour-lane.deadletter", Partitions: 12},
-		Consumer:           Consumer{Group: "attain-harbour-lane", Start: "latest", MaxEventBytes: 1 << 20, DedupeWindow: 64},
+		Consumer:           Consumer{Group: "attain-harbour-lane", Start: "latest", MaxEventBytes: 1 << 20, DedupeWindow: 64, SessionTimeout: 45 * time.Second, HeartbeatInterval: 5 * time.Second},
 		Batch:              Batch{Interval: 250 * time.Millisecond, MaxAnswers: 500},
 		Cache:              Cache{Records: 1000, BlockCacheMB: 256},
 		Model:              Model{Threshold: 0.9, StuckAfter: 15},

@@ -44,7 +44,7 @@ func mdDefault(k *key, def *Config) string {
 // the meanings; a test checks that doc.go holds exactly these rows.
 func docTable() []string {
 	def := Default()
-	rows := []string{fmt.Sprintf("%-24s %-31s %-22s %s", "key", "environment", "flag", "default")}
+	rows := []string{fmt.Sprintf("%-27s %-34s %-22s %s", "key", "environment", "flag", "default")}
 	for _, k := range allKeys {
 		flag := "-"
 		if k.flag != "" {
@@ -57,7 +57,7 @@ func docTable() []string {
 		case d == "":
 			d = `""`
 		}
-		rows = append(rows, fmt.Sprintf("%-24s %-31s %-22s %s", k.path, k.env, flag, d))
+		rows = append(rows, fmt.Sprintf("%-27s %-34s %-22s %s", k.path, k.env, flag, d))
 	}
 	return rows
 }

@@ -36,6 +36,15 @@ const (
 	// Block cache upper bound in MiB (1 TiB): catches a value given in
 	// bytes by mistake and keeps MiB→bytes from overflowing.
 	maxBlockCacheMB = 1 << 20
+	// Consumer-group timings. Brokers accept session timeouts between
+	// group.min.session.timeout.ms (6 s) and group.max.session.timeout.ms
+	// (30 min) by default (Apache Kafka broker configuration reference;
+	// from memory); the lower bound here is lower, 1 s, since a broker may
+	// be configured so (the embedded one is). Heartbeats at least every
+	// 10 ms: more often only loads the coordinator (our choice).
+	minSessionTimeout    = time.Second
+	maxSessionTimeout    = 30 * time.Minute
+	minHeartbeatInterval = 10 * time.Millisecond
 )
 
 var (
@@ -101,6 +110,20 @@ func (c Config) Validate() error {
 	if !(c.Consumer.DedupeWindow >= 1 && c.Consumer.DedupeWindow <= maxDedupeWindow) {
 		v.add("consumer.dedupe_window", fmt.Sprintf("must be between 1 and %d (got %d)", maxDedupeWindow, c.Consumer.DedupeWindow),
 			"set consumer.dedupe_window to e.g. "+strconv.Itoa(def.Consumer.DedupeWindow))
+	}
+
+	st, hb := c.Consumer.SessionTimeout, c.Consumer.HeartbeatInterval
+	if !(st >= minSessionTimeout && st <= maxSessionTimeout) {
+		v.add("consumer.session_timeout", fmt.Sprintf("must be between %v and %v (got %v)", minSessionTimeout, maxSessionTimeout, st),
+			"set consumer.session_timeout to e.g. "+def.Consumer.SessionTimeout.String())
+	}
+	switch {
+	case hb < minHeartbeatInterval:
+		v.add("consumer.heartbeat_interval", fmt.Sprintf("must be at least %v (got %v)", minHeartbeatInterval, hb),
+			"set consumer.heartbeat_interval to e.g. "+def.Consumer.HeartbeatInterval.String())
+	case hb >= st:
+		v.add("consumer.heartbeat_interval", fmt.Sprintf("must be less than consumer.session_timeout (got %v, session timeout %v): a member would be declared dead between two heartbeats", hb, st),
+			fmt.Sprintf("set consumer.heartbeat_interval to a third of consumer.session_timeout or less, e.g. %v", st/3))
 	}
 
 	if !(c.Batch.Interval >= minBatchInterval && c.Batch.Interval <= maxBatchInterval) {

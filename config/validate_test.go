@@ -54,6 +54,23 @@ func TestValidateBounds(t *testing.T) {
 		{"dedupe 1", func(c *Config) { c.Consumer.DedupeWindow = 1 }, ""},
 		{"dedupe 10000", func(c *Config) { c.Consumer.DedupeWindow = 10000 }, ""},
 		{"dedupe 10001", func(c *Config) { c.Consumer.DedupeWindow = 10001 }, "consumer.dedupe_window: must be between 1 and 10000 (got 10001)"},
+		{"session 1s, heartbeat 300ms", func(c *Config) {
+			c.Consumer.SessionTimeout = time.Second
+			c.Consumer.HeartbeatInterval = 300 * time.Millisecond
+		}, ""},
+		{"session 30m", func(c *Config) { c.Consumer.SessionTimeout = 30 * time.Minute }, ""},
+		{"session 999ms", func(c *Config) {
+			c.Consumer.SessionTimeout = 999 * time.Millisecond
+			c.Consumer.HeartbeatInterval = 100 * time.Millisecond
+		}, "consumer.session_timeout: must be between 1s and 30m0s (got 999ms)"},
+		{"session 31m", func(c *Config) { c.Consumer.SessionTimeout = 31 * time.Minute }, "(got 31m0s)"},
+		{"heartbeat 10ms", func(c *Config) { c.Consumer.HeartbeatInterval = 10 * time.Millisecond }, ""},
+		{"heartbeat 9ms", func(c *Config) { c.Consumer.HeartbeatInterval = 9 * time.Millisecond }, "consumer.heartbeat_interval: must be at least 10ms (got 9ms)"},
+		{"heartbeat = session", func(c *Config) { c.Consumer.HeartbeatInterval = 10 * time.Second }, "consumer.heartbeat_interval: must be less than consumer.session_timeout (got 10s, session timeout 10s)"},
+		{"heartbeat > session", func(c *Config) {
+			c.Consumer.SessionTimeout = 6 * time.Second
+			c.Consumer.HeartbeatInterval = 8 * time.Second
+		}, "fix: set consumer.heartbeat_interval to a third of consumer.session_timeout or less, e.g. 2s"},
 		{"interval 1ms", func(c *Config) { c.Batch.Interval = time.Millisecond }, ""},
 		{"interval 10s", func(c *Config) { c.Batch.Interval = 10 * time.Second }, ""},
 		{"interval 999µs", func(c *Config) { c.Batch.Interval = 999 * time.Microsecond }, "batch.interval: must be between 1ms and 10s (got 999µs)"},

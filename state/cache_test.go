@@ -84,3 +84,37 @@ func TestLRUWeightBound(t *testing.T) {
 		t.Fatalf("size %d, weight %d; want 4 entries", n, w)
 	}
 }
+
+// TestShardedLRUBounds: the shards' shares add up to no more than the
+// bounds, dropPartition reaches every shard, and a small cache is one
+// shard (exact LRU order).
+func TestShardedLRUBounds(t *testing.T) {
+	if n := len(newShardedLRU[int](10, 1024).shards); n != 1 {
+		t.Fatalf("a 10-record cache has %d shards, want 1", n)
+	}
+	c := newShardedLRU[int](20_000, 5_000)
+	if len(c.shards) < 2 {
+		t.Fatalf("%d shards; the test needs several", len(c.shards))
+	}
+	for i := range 50_000 {
+		c.put(int32(i%2), fmt.Sprint("learner-", i), i, 1+i%4)
+		if i%9973 == 0 {
+			if n, w := c.size(); n > 5_000 || w > 20_000 {
+				t.Fatalf("after %d puts: %d entries weighing %d, bounds 5000 and 20000", i+1, n, w)
+			}
+		}
+	}
+	if v, ok := c.get(1, []byte("learner-49999")); !ok || v != 49999 {
+		t.Fatalf("the latest entry: %v, %v", v, ok)
+	}
+	c.dropPartition(1)
+	if _, ok := c.get(1, []byte("learner-49999")); ok {
+		t.Fatal("an entry of a dropped partition was returned")
+	}
+	if _, ok := c.get(0, []byte("learner-49998")); !ok {
+		t.Fatal("another partition's entry was dropped")
+	}
+	if h, m := c.counts(); h != 2 || m != 1 {
+		t.Fatalf("hits %d, misses %d; want 2, 1", h, m)
+	}
+}

@@ -3,8 +3,10 @@ package state
 import (
 	"bytes"
 	"encoding/binary"
+	"errors"
 	"math"
 	"reflect"
+	"slices"
 	"testing"
 	"time"
 )
@@ -32,6 +34,34 @@ func FuzzRecordEncoding(f *testing.F) {
 		if got != r {
 			t.Fatalf("round trip: %+v → %+v", r, got)
 		}
+		// Version 2: the same fields, a tail of up to opp answers (times
+		// drawn from the fuzzed values), with and without a window.
+		rv := recVal{rec: r}
+		var want []HistoryEntry
+		for i := uint32(0); i < min(opp, 20); i++ {
+			h := HistoryEntry{At: updated*int64(i) - version, Correct: (i+correct)%3 == 0}
+			rv.push(h)
+			want = append(want, h)
+		}
+		w := &window{seq: uint64(opp), hasAt: mastered, lastAt: updated, ids: []uint64{uint64(version), uint64(updated)}}
+		for _, win := range []*window{nil, w} {
+			b2 := appendRecordVal(nil, &rv, win)
+			got2, gotW, err := decodeRecordVal(b2)
+			if err != nil {
+				t.Fatal(err)
+			}
+			got2.rec.Mastery = 0
+			var tail []HistoryEntry
+			if _, err := forHistEntries(got2.tail, uint64(got2.tailN), func(h HistoryEntry) { tail = append(tail, h) }); err != nil {
+				t.Fatal(err)
+			}
+			if got2.rec != r || !slices.Equal(tail, want) || got2.tailN != rv.tailN || (len(want) > 0 && got2.prevAt != want[len(want)-1].At) {
+				t.Fatalf("v2 round trip: %+v %v → %+v %v", rv, want, got2, tail)
+			}
+			if !reflect.DeepEqual(gotW, win) {
+				t.Fatalf("v2 window round trip: %+v → %+v", win, gotW)
+			}
+		}
 		// Arbitrary bytes: an error or a value, never a panic; a value
 		// re-encodes to the same bytes.
 		raw := append(b[:0:0], b...)
@@ -46,6 +76,8 @@ func FuzzRecordEncoding(f *testing.F) {
 // panics, and anything accepted re-encodes to the same bytes.
 func FuzzValueDecoders(f *testing.F) {
 	f.Add(appendHistory(nil, HistoryEntry{At: 1_700_000_000_000_000_000, Correct: true}))
+	f.Add(appendHistoryChunk(nil, 2, appendHistEntry(appendHistEntry(nil, 0, HistoryEntry{At: 5e9, Correct: true}), 5e9, HistoryEntry{At: 6e9})))
+	f.Add(appendRecordVal(nil, &recVal{rec: Record{Opportunities: 2}, tailN: 1, tail: []byte{0x0e}}, &window{seq: 3, ids: []uint64{9}}))
 	f.Add(appendWindow(nil, &window{hasAt: true, lastAt: 5, ids: []uint64{1, 2}}))
 	f.Add(appendPartState(nil, partState{offset: 9, nextSeq: 3, records: 2}))
 	f.Add(appendOutbox(nil, &OutboxEntry{Output: &Output{Kind: KindReached, Learner: "l", Skill: "s", Mastery: 0.96, Opportunities: 4, ParamsVersion: 2, AnswerID: "a", At: time.Unix(5, 6).UTC(), ID: "x"}}))
@@ -59,6 +91,27 @@ func FuzzValueDecoders(f *testing.F) {
 		if h, err := decodeHistory(b); err == nil {
 			if h2, err := decodeHistory(appendHistory(nil, h)); err != nil || h2 != h {
 				t.Fatalf("history %x → %+v does not round-trip", b, h)
+			}
+		}
+		// History values of both versions: the answers re-encode to a chunk
+		// that decodes to the same answers.
+		var hs []HistoryEntry
+		if n, err := forHistoryValue(b, func(h HistoryEntry) { hs = append(hs, h) }); err == nil {
+			var enc []byte
+			var prev int64
+			for _, h := range hs {
+				enc = appendHistEntry(enc, prev, h)
+				prev = h.At
+			}
+			var hs2 []HistoryEntry
+			if _, err := forHistoryValue(appendHistoryChunk(nil, uint32(n), enc), func(h HistoryEntry) { hs2 = append(hs2, h) }); err != nil || !slices.Equal(hs, hs2) {
+				t.Fatalf("history %x → %v does not round-trip: %v, %v", b, hs, hs2, err)
+			}
+		}
+		if rv, w, err := decodeRecordVal(b); err == nil {
+			rv2, w2, err := decodeRecordVal(appendRecordVal(nil, &rv, w))
+			if err != nil || math.Float64bits(rv.rec.Mastery) != math.Float64bits(rv2.rec.Mastery) || rv2.tailN != rv.tailN || !bytes.Equal(rv2.tail, rv.tail) || !reflect.DeepEqual(w, w2) {
+				t.Fatalf("record %x → %+v %+v does not round-trip: %+v %+v, %v", b, rv, w, rv2, w2, err)
 			}
 		}
 		if w, err := decodeWindow(b); err == nil {
@@ -110,6 +163,64 @@ func TestOutboxEncodingRoundTrip(t *testing.T) {
 	}
 	if _, err := decodeRecord([]byte{recordV1 + 1, 0}); err == nil {
 		t.Fatal("a newer record version was accepted")
+	}
+}
+
+// TestHistEntryEncoding checks the compact answer encoding on the cases
+// its rule names: deltas in whole seconds, milliseconds, microseconds and
+// nanoseconds, zero and negative deltas (late answers), and the extremes of
+// int64 whose difference wraps and needs the escape.
+func TestHistEntryEncoding(t *testing.T) {
+	t0 := time.Date(2025, 9, 1, 18, 0, 0, 0, time.UTC).UnixNano()
+	cases := []struct {
+		name   string
+		ats    []int64
+		maxLen int // bytes of the entries after the first (our format's promise)
+	}{
+		{"a minute apart in seconds", []int64{t0, t0 + 60e9, t0 + 120e9, t0 + 180e9}, 2},
+		{"milliseconds", []int64{t0 + 123e6, t0 + 45_678e6, t0 + 99_001e6}, 3},
+		{"microseconds", []int64{t0 + 1e3, t0 + 5e3}, 2},
+		{"nanoseconds", []int64{t0 + 1, t0 + 2, t0 + 999_999_999}, 5},
+		{"same time", []int64{t0, t0, t0}, 1},
+		{"late", []int64{t0, t0 - 3*3600e9, t0 + 1}, 9},
+		{"extremes", []int64{math.MaxInt64, math.MinInt64, math.MaxInt64, 0, math.MinInt64, -1}, 11},
+	}
+	for _, c := range cases {
+		var enc []byte
+		var prev int64
+		var want []HistoryEntry
+		for i, at := range c.ats {
+			h := HistoryEntry{At: at, Correct: i%2 == 0}
+			n := len(enc)
+			enc = appendHistEntry(enc, prev, h)
+			if i > 0 && len(enc)-n > c.maxLen {
+				t.Errorf("%s: entry %d takes %d bytes, want at most %d", c.name, i, len(enc)-n, c.maxLen)
+			}
+			prev = at
+			want = append(want, h)
+		}
+		var got []HistoryEntry
+		last, err := forHistEntries(enc, uint64(len(want)), func(h HistoryEntry) { got = append(got, h) })
+		if err != nil || !slices.Equal(got, want) || last != c.ats[len(c.ats)-1] {
+			t.Errorf("%s: decoded %v (last %d, %v), want %v", c.name, got, last, err, want)
+		}
+		if _, err := forHistEntries(enc, uint64(len(want)+1), nil); err == nil {
+			t.Errorf("%s: one entry more than encoded was accepted", c.name)
+		}
+		if _, err := forHistEntries(append(enc, 0x0e), uint64(len(want)), nil); err == nil {
+			t.Errorf("%s: trailing bytes were accepted", c.name)
+		}
+	}
+	// Both history value versions read; an unknown one is refused.
+	n, err := forHistoryValue(appendHistory(nil, HistoryEntry{At: 7, Correct: true}), nil)
+	if err != nil || n != 1 {
+		t.Fatalf("version 1 history value: %d, %v", n, err)
+	}
+	if _, err := forHistoryValue([]byte{historyV2 + 1, 1, 0x0e}, nil); !errors.Is(err, ErrCorruptStore) {
+		t.Fatalf("history version 3: %v, want ErrCorruptStore", err)
+	}
+	if _, _, err := decodeRecordVal(append([]byte{recordV2 + 1}, make([]byte, recordLen)...)); !errors.Is(err, ErrCorruptStore) {
+		t.Fatalf("record version 3: %v, want ErrCorruptStore", err)
 	}
 }
 

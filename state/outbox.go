@@ -3,6 +3,7 @@ package state
 import (
 	"errors"
 	"fmt"
+	"slices"
 
 	"github.com/cockroachdb/pebble/v2"
 )
@@ -83,29 +84,43 @@ func (s *Store) DeleteOutbox(p int32, seqs []uint64) error {
 	}
 	s.outboxMu.Lock()
 	defer s.outboxMu.Unlock()
+	want := slices.Clone(seqs)
+	slices.Sort(want)
+	want = slices.Compact(want)
+	// One pass of an iterator over the range the numbers span finds the
+	// entries that exist (the numbers are usually one consecutive run).
+	it, err := s.db.NewIter(&pebble.IterOptions{
+		LowerBound: outboxKey(nil, p, want[0]),
+		UpperBound: outboxKeyEnd(p, want[len(want)-1]),
+	})
+	if err != nil {
+		return fmt.Errorf("attain: deleting from the outbox of partition %d: %w", p, err)
+	}
 	b := s.db.NewBatch()
 	defer b.Close()
 	var n int64
-	var k []byte
-	seen := make(map[uint64]struct{}, len(seqs))
-	for _, seq := range seqs {
-		if _, dup := seen[seq]; dup {
-			continue
+	i := 0
+	for ok := it.First(); ok && i < len(want); ok = it.Next() {
+		k := it.Key()
+		if len(k) != partPrefixLen+8 {
+			it.Close()
+			return fmt.Errorf("attain: deleting from the outbox of partition %d: %w: key %q", p, ErrCorruptStore, k)
 		}
-		seen[seq] = struct{}{}
-		k = outboxKey(k[:0], p, seq)
-		_, closer, err := s.db.Get(k)
-		if errors.Is(err, pebble.ErrNotFound) {
-			continue
+		seq := beUint64(k[partPrefixLen:])
+		for i < len(want) && want[i] < seq {
+			i++ // not (or no longer) in the outbox
 		}
-		if err != nil {
-			return fmt.Errorf("attain: deleting outbox entry %d of partition %d: %w", seq, p, err)
+		if i < len(want) && want[i] == seq {
+			if err := b.Delete(k, nil); err != nil {
+				it.Close()
+				return fmt.Errorf("attain: deleting outbox entry %d of partition %d: %w", seq, p, err)
+			}
+			n++
+			i++
 		}
-		closer.Close()
-		if err := b.Delete(k, nil); err != nil {
-			return fmt.Errorf("attain: deleting outbox entry %d of partition %d: %w", seq, p, err)
-		}
-		n++
+	}
+	if err := errors.Join(it.Error(), it.Close()); err != nil {
+		return fmt.Errorf("attain: deleting from the outbox of partition %d: %w", p, err)
 	}
 	if n == 0 {
 		return nil
@@ -115,6 +130,14 @@ func (s *Store) DeleteOutbox(p int32, seqs []uint64) error {
 	}
 	s.depth.Add(-n)
 	return nil
+}
+
+// outboxKeyEnd is the first key after partition p's outbox entry seq.
+func outboxKeyEnd(p int32, seq uint64) []byte {
+	if seq == ^uint64(0) {
+		return familyEnd(uint32(p), famOutbox)
+	}
+	return outboxKey(nil, p, seq+1)
 }
 
 // OutboxDepth is the number of committed, undeleted outbox entries over all

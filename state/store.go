@@ -102,7 +102,7 @@ func (o *StoreOptions) setDefaults() error {
 		errs = append(errs, fmt.Errorf("%w: cache learners = %d: must be positive (or 0 for the default)", ErrInvalidStoreOptions, o.CacheLearners))
 	}
 	if o.MemTableBytes == 0 {
-		o.MemTableBytes = 16 << 20
+		o.MemTableBytes = 32 << 20
 	}
 	if o.MemTableBytes < 0 {
 		errs = append(errs, fmt.Errorf("%w: memtable bytes = %d: must be positive (or 0 for the default)", ErrInvalidStoreOptions, o.MemTableBytes))
@@ -129,7 +129,7 @@ type Store struct {
 	slots map[int32]*partSlot // per-partition commit lock and the live handle
 	parts map[int32]struct{}  // partitions that have (or are committing) data
 
-	cache *lru[*learnerVal] // learner record prefix → the learner's committed state
+	cache *shardedLRU[*learnerVal] // learner record prefix → the learner's committed state
 
 	outboxMu sync.Mutex // serialises DeleteOutbox so the depth stays exact
 	depth    atomic.Int64
@@ -181,7 +181,7 @@ func OpenStore(dir string, opt StoreOptions) (*Store, error) {
 		log:   log,
 		slots: make(map[int32]*partSlot),
 		parts: make(map[int32]struct{}),
-		cache: newLRU[*learnerVal](opt.CacheRecords, opt.CacheLearners),
+		cache: newShardedLRU[*learnerVal](opt.CacheRecords, opt.CacheLearners),
 	}
 	if err := s.checkSchema(dir); err != nil {
 		db.Close()
@@ -406,9 +406,10 @@ type StoreStats struct {
 // Stats returns the current counters (Pebble's figures are zero after Close).
 func (s *Store) Stats() StoreStats {
 	learners, records := s.cache.size()
+	hits, misses := s.cache.counts()
 	st := StoreStats{
-		CacheHits:      s.cache.hits.Load(),
-		CacheMisses:    s.cache.misses.Load(),
+		CacheHits:      hits,
+		CacheMisses:    misses,
 		Records:        s.records.Load(),
 		CachedRecords:  int64(records),
 		CachedLearners: int64(learners),

@@ -9,40 +9,58 @@ import (
 	"github.com/cockroachdb/pebble/v2"
 )
 
-// learnerVal is a learner's committed state in one partition as the cache
-// holds it: the applied-id window and every record of the learner, by
-// skill. It is complete (a skill it lacks has no record) and, once made,
-// never changed: a commit caches a new one.
+// learnerVal is a learner's state in one partition: the applied-id window
+// and every record of the learner, by skill. It is complete (a skill it
+// lacks has no record). The cache holds it, and Apply changes it in place:
+// a partition's entries are used by that partition's one live handle only
+// (a new handle drops them), and every way staged changes are abandoned —
+// Release, a failed Commit — drops the partition's entries too, so what the
+// cache serves is committed state or the live handle's own staging.
 type learnerVal struct {
-	win       window
-	skills    []string // sorted
-	recs      []recVal // recs[i] is skills[i]'s; every tail capped (len == cap)
-	legacyWin bool     // the window came from a schema 1 window key, which still exists
+	key       string      // the learner's record prefix (P 0x01 learner 0x00): staging and cache key
+	win       window      // the applied-id window
+	skills    []string    // sorted
+	recs      []*recState // recs[i] is skills[i]'s
+	legacyWin bool        // the window came from a schema 1 window key, which still exists
+
+	// Staging, emptied by Commit.
+	dirty   []*recState // records changed since the last commit, in the order first changed
+	carrier *recState   // the record that carries the window in the next commit: the latest answer's
 }
 
-// noLearner is the state of a learner the partition has never seen.
-var noLearner = &learnerVal{}
-
-func (lv *learnerVal) find(skill string) (int, bool) {
-	return slices.BinarySearch(lv.skills, skill)
-}
-
-// stagedLearner is a learner's state as it will be committed: the
-// committed state it started from and what changed since.
-type stagedLearner struct {
-	key     string      // the learner's record prefix (P 0x01 learner 0x00): staging and cache key
-	base    *learnerVal // the committed state
-	win     window      // the window as it will be committed (a copy of base's, then changed)
-	recs    []stagedRec // the records changed, in the order first changed
-	carrier int         // index in recs of the record that carries the window: the latest answer's
-}
-
-// stagedRec is a changed record of a stagedLearner.
-type stagedRec struct {
+// recState is one learner-skill record with the history chunks staged for
+// it since the last commit.
+type recState struct {
 	skill  string
 	rv     recVal
 	chunks []histChunk // full tails moved out of the value since the last Commit, in order
-	isNew  bool
+	dirty  bool
+}
+
+func (lv *learnerVal) find(skill string) (*recState, bool) {
+	i, ok := slices.BinarySearch(lv.skills, skill)
+	if !ok {
+		return nil, false
+	}
+	return lv.recs[i], true
+}
+
+func (lv *learnerVal) insert(rs *recState) {
+	i, _ := slices.BinarySearch(lv.skills, rs.skill)
+	lv.skills = slices.Insert(lv.skills, i, rs.skill)
+	lv.recs = slices.Insert(lv.recs, i, rs)
+}
+
+// stage marks rs as changed; the latest answer's first skill carries the
+// window.
+func (lv *learnerVal) stage(rs *recState, carrier bool) {
+	if !rs.dirty {
+		rs.dirty = true
+		lv.dirty = append(lv.dirty, rs)
+	}
+	if carrier {
+		lv.carrier = rs
+	}
 }
 
 // histChunk is a history chunk staged for its key: n answers from
@@ -61,69 +79,22 @@ const (
 	tailMaxBytes   = 96
 )
 
-// staged returns the index in sl.recs of skill's record, -1 if unchanged.
-func (sl *stagedLearner) staged(skill string) int {
-	for i := range sl.recs {
-		if sl.recs[i].skill == skill {
-			return i
-		}
-	}
-	return -1
-}
-
-// committed is the learnerVal the cache holds once sl is committed.
-func (sl *stagedLearner) committed() *learnerVal {
-	base := sl.base
-	lv := &learnerVal{
-		win:    sl.win.clone(),
-		skills: slices.Clone(base.skills),
-		recs:   slices.Clone(base.recs),
-	}
-	for i := range sl.recs {
-		sr := &sl.recs[i]
-		rv := sr.rv
-		rv.tail = rv.tail[:len(rv.tail):len(rv.tail)] // a later push copies
-		j, ok := slices.BinarySearch(lv.skills, sr.skill)
-		if ok {
-			lv.recs[j] = rv
-			continue
-		}
-		lv.skills = slices.Insert(lv.skills, j, sr.skill)
-		lv.recs = slices.Insert(lv.recs, j, rv)
-	}
-	return lv
-}
-
 // loadLearner returns the learner whose record prefix is lk: staged
-// (staged = true), else a new staging over the cached or stored state.
-func (pt *Partition) loadLearner(lk []byte) (sl *stagedLearner, staged bool, err error) {
-	if sl := pt.learners[string(lk)]; sl != nil {
-		return sl, true, nil
+// (staged = true), cached, read from Pebble (and cached), or new.
+func (pt *Partition) loadLearner(lk []byte) (lv *learnerVal, staged bool, err error) {
+	if lv := pt.learners[string(lk)]; lv != nil {
+		return lv, true, nil
 	}
-	lv, ok := pt.s.cache.get(pt.p, lk)
-	if !ok {
-		if lv, err = pt.readLearner(lk); err != nil {
-			return nil, false, err
-		}
-		if len(lv.recs) > 0 {
-			pt.s.cache.put(pt.p, string(lk), lv, len(lv.recs))
-		}
+	if lv, ok := pt.s.cache.get(pt.p, lk); ok {
+		return lv, false, nil
 	}
-	if n := len(pt.spare); n > 0 {
-		sl, pt.spare = pt.spare[n-1], pt.spare[:n-1]
-	} else {
-		sl = &stagedLearner{}
+	if lv, err = pt.readLearner(lk); err != nil {
+		return nil, false, err
 	}
-	sl.key, sl.base, sl.carrier = string(lk), lv, -1
-	sl.win = lv.win.clone()
-	return sl, false, nil
-}
-
-// recycle keeps sl for a later loadLearner.
-func (pt *Partition) recycle(sl *stagedLearner) {
-	clear(sl.recs)
-	*sl = stagedLearner{recs: sl.recs[:0]}
-	pt.spare = append(pt.spare, sl)
+	if len(lv.recs) > 0 {
+		pt.s.cache.put(pt.p, lv.key, lv, len(lv.recs))
+	}
+	return lv, false, nil
 }
 
 // readLearner reads the committed state of the learner whose record prefix
@@ -135,7 +106,7 @@ func (pt *Partition) readLearner(lk []byte) (*learnerVal, error) {
 	if err != nil {
 		return nil, fmt.Errorf("attain: partition %d: reading learner %q: %w", pt.p, lk, err)
 	}
-	var lv *learnerVal
+	lv := &learnerVal{key: string(lk)}
 	var win *window
 	for ok := it.First(); ok; ok = it.Next() {
 		v, err := it.ValueAndErr()
@@ -148,12 +119,10 @@ func (pt *Partition) readLearner(lk []byte) (*learnerVal, error) {
 			it.Close()
 			return nil, fmt.Errorf("attain: partition %d: record %q: %w", pt.p, it.Key(), err)
 		}
-		rv.tail = bytes.Clone(rv.tail)[:len(rv.tail):len(rv.tail)] // v is Pebble's, valid until Next
-		if lv == nil {
-			lv = &learnerVal{}
-		}
-		lv.skills = append(lv.skills, string(it.Key()[len(lk):]))
-		lv.recs = append(lv.recs, rv)
+		rv.tail = bytes.Clone(rv.tail) // v is Pebble's, valid until Next
+		skill := pt.intern(it.Key()[len(lk):])
+		lv.skills = append(lv.skills, skill)
+		lv.recs = append(lv.recs, &recState{skill: skill, rv: rv})
 		if w != nil && (win == nil || w.seq >= win.seq) {
 			win = w
 		}
@@ -178,17 +147,40 @@ func (pt *Partition) readLearner(lk []byte) (*learnerVal, error) {
 			if err != nil {
 				return nil, fmt.Errorf("attain: partition %d: id window %q: %w", pt.p, wk, err)
 			}
-			if lv == nil {
-				lv = &learnerVal{}
-			}
 			win, lv.legacyWin = &dw, true
 		}
-	}
-	if lv == nil {
-		return noLearner, nil
 	}
 	if win != nil {
 		lv.win = *win
 	}
 	return lv, nil
+}
+
+// maxInterned bounds a partition handle's table of skill names (our choice:
+// far more skills than any item bank tags, small next to the cache).
+const maxInterned = 10_000
+
+// intern returns the partition's one copy of skill name b, so that the
+// learners in the cache share their skill names (fewer allocations, and
+// names that are compared often stay in the processor's caches).
+func (pt *Partition) intern(b []byte) string {
+	if s, ok := pt.skillNames[string(b)]; ok {
+		return s
+	}
+	s := string(b)
+	if len(pt.skillNames) < maxInterned {
+		pt.skillNames[s] = s
+	}
+	return s
+}
+
+// internString is intern for a string.
+func (pt *Partition) internString(skill string) string {
+	if s, ok := pt.skillNames[skill]; ok {
+		return s
+	}
+	if len(pt.skillNames) < maxInterned {
+		pt.skillNames[skill] = skill
+	}
+	return skill
 }

@@ -72,8 +72,9 @@ type Partition struct {
 	outboxN   int64     // outbox entries staged
 
 	batch    *pebble.Batch
-	learners map[string]*stagedLearner // learner key → the learner's staged changes
-	spare    []*stagedLearner          // cleared ones, for reuse
+	learners map[string]*learnerVal // learners changed since the last Commit, by key
+
+	skillNames map[string]string // see intern
 
 	kbuf, vbuf, lkbuf, rkbuf []byte
 	work                     []skillWork
@@ -83,7 +84,7 @@ type Partition struct {
 // (phase 1) and the staging (phase 2) of Apply.
 type skillWork struct {
 	skill     string
-	idx       int // index in the stagedLearner's recs; -1 when not staged yet
+	rs        *recState // nil when the learner has no record of the skill yet
 	rv        recVal
 	isNew     bool
 	params    Params
@@ -149,13 +150,14 @@ func (s *Store) Partition(p int32) (*Partition, error) {
 		st.nextSeq = 1
 	}
 	pt := &Partition{
-		s:         s,
-		p:         p,
-		slot:      sl,
-		committed: st,
-		staged:    st,
-		batch:     s.db.NewBatch(),
-		learners:  make(map[string]*stagedLearner),
+		s:          s,
+		p:          p,
+		slot:       sl,
+		committed:  st,
+		staged:     st,
+		batch:      s.db.NewBatch(),
+		learners:   make(map[string]*learnerVal),
+		skillNames: make(map[string]string),
 	}
 	sl.handle = pt
 	return pt, nil
@@ -261,21 +263,18 @@ func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResu
 
 	// Phase 1: every read that can fail, before anything is staged.
 	pt.lkbuf = learnerRecordPrefix(pt.lkbuf[:0], pt.p, a.Learner)
-	sl, staged, err := pt.loadLearner(pt.lkbuf)
+	lv, staged, err := pt.loadLearner(pt.lkbuf)
 	if err != nil {
 		return ApplyResult{}, err
 	}
 	h := idHash(a.ID)
-	if sl.win.contains(h) {
-		if !staged {
-			pt.recycle(sl)
-		}
+	if lv.win.contains(h) {
 		pt.advance(offset)
 		s.duplicates.Add(1)
 		return ApplyResult{Duplicate: true}, nil
 	}
 	at := a.At.UnixNano()
-	res := ApplyResult{Late: sl.win.hasAt && at < sl.win.lastAt, PCorrect: make([]float64, len(a.Skills))}
+	res := ApplyResult{Late: lv.win.hasAt && at < lv.win.lastAt, PCorrect: make([]float64, len(a.Skills))}
 
 	pt.work = pt.work[:0]
 	for i, skill := range a.Skills {
@@ -283,22 +282,16 @@ func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResu
 			continue
 		}
 		p, v := params.For(skill)
-		sw := skillWork{skill: skill, idx: sl.staged(skill), params: p, first: i}
-		switch j, ok := sl.base.find(skill); {
-		case sw.idx >= 0:
-			sw.rv = sl.recs[sw.idx].rv
-		case ok:
-			sw.rv = sl.base.recs[j]
-		default:
+		sw := skillWork{skill: skill, params: p, first: i}
+		if rs, ok := lv.find(skill); ok {
+			sw.rs, sw.rv = rs, rs.rv
+		} else {
 			sw.rv, sw.isNew = recVal{rec: NewRecord(p, v)}, true
 		}
 		if sw.rv.rec.ParamsVersion != v {
 			if sw.rv.rec.Opportunities > 0 {
-				rec, err := pt.rederive(sl, &sw, p, v)
+				rec, err := pt.rederive(lv, &sw, p, v)
 				if err != nil {
-					if !staged {
-						pt.recycle(sl)
-					}
 					return ApplyResult{}, err
 				}
 				sw.rv.rec, sw.rederived = rec, true
@@ -313,16 +306,14 @@ func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResu
 	pol := s.opt.Policy
 	for k := range pt.work {
 		sw := &pt.work[k]
-		if sw.idx < 0 {
-			sl.recs = append(sl.recs, stagedRec{skill: sw.skill, isNew: sw.isNew})
-			sw.idx = len(sl.recs) - 1
-			if sw.isNew {
-				pt.staged.records++
-			}
+		rs := sw.rs
+		if rs == nil {
+			rs = &recState{skill: pt.internString(sw.skill)}
+			lv.insert(rs)
+			pt.staged.records++
 		}
-		sr := &sl.recs[sw.idx]
-		sr.rv = sw.rv
-		rv := &sr.rv
+		rs.rv = sw.rv
+		rv := &rs.rv
 		out := rv.rec.Apply(sw.params, a.Correct, at, pol)
 		res.PCorrect[sw.first] = out.PCorrect
 		if sw.rederived {
@@ -330,12 +321,10 @@ func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResu
 		}
 		rv.push(HistoryEntry{At: at, Correct: a.Correct})
 		if rv.tailN >= tailMaxAnswers || len(rv.tail) >= tailMaxBytes {
-			sr.chunks = append(sr.chunks, histChunk{first: rv.rec.Opportunities - rv.tailN + 1, n: rv.tailN, entries: rv.tail})
+			rs.chunks = append(rs.chunks, histChunk{first: rv.rec.Opportunities - rv.tailN + 1, n: rv.tailN, entries: rv.tail})
 			rv.tail, rv.tailN, rv.prevAt = nil, 0, 0
 		}
-		if k == 0 {
-			sl.carrier = sw.idx
-		}
+		lv.stage(rs, k == 0)
 		for _, kind := range [2]Kind{KindReached, KindStuck} {
 			if (kind == KindReached && !out.Reached) || (kind == KindStuck && !out.Stuck) {
 				continue
@@ -357,9 +346,9 @@ func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResu
 			}
 		}
 	}
-	sl.win.add(h, at, s.opt.DedupeWindow)
+	lv.win.add(h, at, s.opt.DedupeWindow)
 	if !staged {
-		pt.learners[sl.key] = sl
+		pt.learners[lv.key] = lv
 	}
 	pt.advance(offset)
 	s.applied.Add(1)
@@ -402,8 +391,8 @@ func (pt *Partition) stageOutbox(e *OutboxEntry) {
 // chunks staged since the last commit, then the tail of the record as
 // loaded (staged, cached or stored: the history keys committed with it
 // precede it).
-func (pt *Partition) rederive(sl *stagedLearner, sw *skillWork, p Params, v int64) (Record, error) {
-	pt.rkbuf = append(append(pt.rkbuf[:0], sl.key...), sw.skill...)
+func (pt *Partition) rederive(lv *learnerVal, sw *skillWork, p Params, v int64) (Record, error) {
+	pt.rkbuf = append(append(pt.rkbuf[:0], lv.key...), sw.skill...)
 	rk, want := pt.rkbuf, sw.rv.rec.Opportunities
 	rec := NewRecord(p, v)
 	pol := pt.s.opt.Policy
@@ -413,8 +402,8 @@ func (pt *Partition) rederive(sl *stagedLearner, sw *skillWork, p Params, v int6
 		n++
 	}
 	err := pt.s.historyKeys(pt.s.db, rk, apply)
-	if err == nil && sw.idx >= 0 {
-		for _, c := range sl.recs[sw.idx].chunks {
+	if err == nil && sw.rs != nil {
+		for _, c := range sw.rs.chunks {
 			if _, err = forHistEntries(c.entries, uint64(c.n), apply); err != nil {
 				break
 			}
@@ -496,26 +485,25 @@ func (pt *Partition) Commit(sync bool) error {
 	s.parts[pt.p] = struct{}{} // before the commit, so readers that list partitions after opening an iterator see it
 	s.mu.Unlock()
 
-	for _, sl := range pt.learners {
-		for i := range sl.recs {
-			sr := &sl.recs[i]
-			pt.rkbuf = append(append(pt.rkbuf[:0], sl.key...), sr.skill...)
-			for _, c := range sr.chunks {
+	for _, lv := range pt.learners {
+		for _, rs := range lv.dirty {
+			pt.rkbuf = append(append(pt.rkbuf[:0], lv.key...), rs.skill...)
+			for _, c := range rs.chunks {
 				pt.kbuf = historyKeyFromRecordKey(pt.kbuf[:0], pt.rkbuf, c.first)
 				pt.vbuf = appendHistoryChunk(pt.vbuf[:0], c.n, c.entries)
 				pt.set(pt.kbuf, pt.vbuf)
 			}
 			var w *window
-			if i == sl.carrier {
-				w = &sl.win
+			if rs == lv.carrier {
+				w = &lv.win
 			}
-			pt.vbuf = appendRecordVal(pt.vbuf[:0], &sr.rv, w)
+			pt.vbuf = appendRecordVal(pt.vbuf[:0], &rs.rv, w)
 			pt.set(pt.rkbuf, pt.vbuf)
 		}
-		if sl.base.legacyWin {
+		if lv.legacyWin {
 			// The window now lives in a record: the schema 1 window key goes.
 			pt.kbuf = appendPartFamily(pt.kbuf[:0], uint32(pt.p), famWindow)
-			pt.kbuf = append(pt.kbuf, sl.key[partPrefixLen:len(sl.key)-1]...)
+			pt.kbuf = append(pt.kbuf, lv.key[partPrefixLen:len(lv.key)-1]...)
 			if err := pt.batch.Delete(pt.kbuf, nil); err != nil {
 				panic(fmt.Sprintf("attain: staging into partition %d's batch: %v", pt.p, err))
 			}
@@ -538,9 +526,13 @@ func (pt *Partition) Commit(sync bool) error {
 		pt.dropStaging()
 		return fmt.Errorf("attain: committing partition %d (%d offsets up to %d): %w", pt.p, pt.pending, pt.staged.offset, err)
 	}
-	for _, sl := range pt.learners {
-		lv := sl.committed()
-		s.cache.put(pt.p, sl.key, lv, len(lv.recs))
+	for _, lv := range pt.learners {
+		for _, rs := range lv.dirty {
+			rs.dirty, rs.chunks = false, nil
+		}
+		clear(lv.dirty)
+		lv.dirty, lv.carrier, lv.legacyWin = lv.dirty[:0], nil, false
+		s.cache.put(pt.p, lv.key, lv, len(lv.recs))
 	}
 	s.records.Add(int64(pt.staged.records) - int64(pt.committed.records))
 	s.commits.Add(1)
@@ -563,10 +555,7 @@ func (pt *Partition) dropStaging() {
 }
 
 func (pt *Partition) clearStaging() {
-	for k, sl := range pt.learners {
-		delete(pt.learners, k)
-		pt.recycle(sl)
-	}
+	clear(pt.learners)
 	pt.pending = 0
 	pt.outboxN = 0
 }

@@ -666,7 +666,7 @@ func TestCacheBoundAndRelease(t *testing.T) {
 	if st.CacheHits-h0 != 5 || st.CacheMisses != m0 {
 		t.Fatalf("hot learner: %d hits, %d misses; want 5, 0", st.CacheHits-h0, st.CacheMisses-m0)
 	}
-	// Staged state never reaches the cache; Release drops the partition's entries.
+	// Staged state does not outlive Release: it drops the partition's entries.
 	apply("l99")
 	pt.Release()
 	if _, err := pt.Apply(Answer{ID: "z", Learner: "l99", Skills: []string{"trial-balance"}, At: at}, 1000, pf); !errors.Is(err, ErrPartitionReleased) {

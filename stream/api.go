@@ -188,6 +188,7 @@ func (a *API) metrics(w http.ResponseWriter, r *http.Request) {
 		return
 	}
 	a.m.WritePrometheus(w, a.st.OutboxDepth())
+	WriteStoreMetrics(w, a.st.Stats())
 }
 
 // authorized requires the bearer token, when one is configured. The

@@ -375,6 +375,21 @@ func TestAPIHealthReadyMetrics(t *testing.T) {
 	if got := findSample(t, fams, "attain_answers_applied_total", nil); got != 13 {
 		t.Errorf("applied %v, want 13", got)
 	}
+	// The store's figures come with the processor's.
+	stats := f.st.Stats()
+	if stats.CacheHits+stats.CacheMisses == 0 || stats.Records == 0 {
+		t.Fatalf("fixture store stats %+v: no cache lookups or records to check", stats)
+	}
+	for name, want := range map[string]int64{
+		"attain_store_cache_hits_total":   stats.CacheHits,
+		"attain_store_cache_misses_total": stats.CacheMisses,
+		"attain_store_records":            stats.Records,
+		"attain_store_cached_records":     stats.CachedRecords,
+	} {
+		if got := findSample(t, fams, name, nil); got != float64(want) {
+			t.Errorf("%s = %v, want %d", name, got, want)
+		}
+	}
 	if got := findSample(t, fams, "attain_consumer_lag", map[string]string{"partition": "1"}); got != 4 {
 		t.Errorf("lag %v, want 4", got)
 	}

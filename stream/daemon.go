@@ -178,12 +178,20 @@ func (d *Daemon) Run(ctx context.Context) (err error) {
 	proc, err := NewProcessor(st, reg, pub, m, ProcessorOptions{
 		Brokers: brokers, Group: cfg.Consumer.Group, Topic: cfg.Topics.Answers, Start: cfg.Consumer.Start,
 		MaxEventBytes: cfg.Consumer.MaxEventBytes, BatchInterval: cfg.Batch.Interval, BatchMaxAnswers: cfg.Batch.MaxAnswers,
+		SessionTimeout: cfg.Consumer.SessionTimeout, HeartbeatInterval: cfg.Consumer.HeartbeatInterval,
 		Decoder: dec, Logger: log,
 	})
 	if err != nil {
 		return err
 	}
 	g.goActor("consumer", proc.Run)
+	if cfg.Refit.Interval > 0 || cfg.Refit.Answers > 0 {
+		rl, err := NewRefitLoop(st, reg, m, RefitLoopOptionsFrom(cfg, brokers, log))
+		if err != nil {
+			return err
+		}
+		g.goActor("refit loop", rl.Run)
+	}
 
 	d.mu.Lock()
 	d.brokers, d.store, d.metrics, d.httpLn = brokers, st, m, httpLn

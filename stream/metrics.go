@@ -11,6 +11,8 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
+
+	"github.com/attain-dev/attain/state"
 )
 
 // Metrics counts what the processor does. The exported counters are plain
@@ -40,6 +42,14 @@ type Metrics struct {
 
 	// Commits counts state batches committed to the store.
 	Commits atomic.Int64
+	// Committed counts input messages whose batch has been committed to
+	// the store (applied, duplicate, dead-lettered or already applied
+	// before: every message that will not be read again after a crash).
+	Committed atomic.Int64
+	// SkippedOffsets counts offsets never read because the log no longer
+	// held them (below the log start at resumption: retention deleted
+	// them first).
+	SkippedOffsets atomic.Int64
 
 	// ParamsVersion is the version of the parameter set in force (a gauge);
 	// ParamsSwaps counts the sets swapped in since start.
@@ -187,6 +197,8 @@ func (m *Metrics) WritePrometheus(w io.Writer, outboxDepth int64) {
 	e.counter("attain_deadletters_published_total", "Dead letters acknowledged by the broker.", m.PublishedDeadLetters.Load())
 
 	e.counter("attain_commits_total", "State batches committed to the store.", m.Commits.Load())
+	e.counter("attain_messages_committed_total", "Input messages whose batch has been committed to the store.", m.Committed.Load())
+	e.counter("attain_offsets_skipped_total", "Input offsets never read because the log no longer held them (retention deleted them first).", m.SkippedOffsets.Load())
 	m.writeCommitHistogram(&e)
 	e.gauge("attain_outbox_depth", "Committed outbox entries not yet acknowledged by the broker.", float64(outboxDepth))
 
@@ -223,6 +235,27 @@ func (m *Metrics) WritePrometheus(w io.Writer, outboxDepth int64) {
 	for i, p := range lagParts {
 		e.sample("attain_consumer_lag", `partition="`+strconv.Itoa(int(p))+`"`, float64(lags[i]))
 	}
+}
+
+// WriteStoreMetrics writes the store's figures (cache, records, Pebble's
+// block cache, memtables and disk use) in the same format, names prefixed
+// attain_store_. Write errors are not reported (see WritePrometheus).
+func WriteStoreMetrics(w io.Writer, st state.StoreStats) {
+	bw := bufio.NewWriter(w)
+	defer bw.Flush()
+	e := expo{w: bw}
+	e.counter("attain_store_cache_hits_total", "Answers whose learner was found in the store's cache.", st.CacheHits)
+	e.counter("attain_store_cache_misses_total", "Answers whose learner was read from Pebble (not in the store's cache).", st.CacheMisses)
+	e.gauge("attain_store_cached_records", "Learner-skill records held by the store's cache.", float64(st.CachedRecords))
+	e.gauge("attain_store_cached_learners", "Learners held by the store's cache.", float64(st.CachedLearners))
+	e.gauge("attain_store_records", "Learner-skill records in the store.", float64(st.Records))
+	e.gauge("attain_store_partitions", "Partitions with data in the store.", float64(st.Partitions))
+	e.counter("attain_store_commit_failures_total", "Store batches that failed to commit.", st.CommitFailures)
+	e.gauge("attain_store_block_cache_bytes", "Bytes in Pebble's block cache.", float64(st.BlockCacheBytes))
+	e.counter("attain_store_block_cache_hits_total", "Pebble block cache hits.", st.BlockCacheHits)
+	e.counter("attain_store_block_cache_misses_total", "Pebble block cache misses.", st.BlockCacheMisses)
+	e.gauge("attain_store_memtable_bytes", "Bytes in Pebble's memtables.", float64(st.MemTableBytes))
+	e.gauge("attain_store_disk_bytes", "Bytes of Pebble's files on disk.", float64(st.DiskBytes))
 }
 
 func (m *Metrics) writeCommitHistogram(e *expo) {

@@ -402,6 +402,8 @@ func TestWritePrometheus(t *testing.T) {
 	m.PublishedStuck.Add(2)
 	m.PublishedDeadLetters.Add(1)
 	m.Commits.Add(6)
+	m.Committed.Add(8)
+	m.SkippedOffsets.Add(9)
 	m.ParamsVersion.Store(3)
 	m.ParamsSwaps.Add(2)
 	// Observations below, exactly on, between and above the bounds.
@@ -443,6 +445,8 @@ func TestWritePrometheus(t *testing.T) {
 		"attain_records_rederived_total":       4,
 		"attain_deadletters_published_total":   1,
 		"attain_commits_total":                 6,
+		"attain_messages_committed_total":      8,
+		"attain_offsets_skipped_total":         9,
 		"attain_outbox_depth":                  17,
 		"attain_params_version":                3,
 		"attain_params_swaps_total":            2,

@@ -34,9 +34,12 @@ type ProcessorOptions struct {
 	// Decoder decodes input values. Default &state.NativeDecoder{}.
 	Decoder Decoder
 	// SessionTimeout, HeartbeatInterval and RebalanceTimeout are the
-	// consumer-group timings. Defaults 10 s, 1 s and 30 s: the Java
-	// client's session.timeout.ms default before Kafka 3.0, heartbeats at
-	// a tenth of it, and kafka-go's rebalance timeout (common practice).
+	// consumer-group timings (consumer.session_timeout and
+	// consumer.heartbeat_interval). Defaults 10 s, a third of the session
+	// timeout, and 30 s: the Java client's session.timeout.ms default
+	// before Kafka 3.0, heartbeats no further apart than a third of it
+	// (common practice), and kafka-go's rebalance timeout. The heartbeat
+	// interval must be less than the session timeout.
 	SessionTimeout, HeartbeatInterval, RebalanceTimeout time.Duration
 	// DrainTimeout bounds the last outbox drain of a partition on shutdown.
 	// Default 5 s.
@@ -89,7 +92,10 @@ func NewProcessor(st *state.Store, reg *state.Registry, pub *Publisher, m *Metri
 		opt.SessionTimeout = 10 * time.Second
 	}
 	if opt.HeartbeatInterval <= 0 {
-		opt.HeartbeatInterval = opt.SessionTimeout / 10
+		opt.HeartbeatInterval = opt.SessionTimeout / 3
+	}
+	if opt.HeartbeatInterval >= opt.SessionTimeout {
+		return nil, fmt.Errorf("%w: consumer.heartbeat_interval = %v must be less than consumer.session_timeout = %v", ErrConfig, opt.HeartbeatInterval, opt.SessionTimeout)
 	}
 	if opt.RebalanceTimeout <= 0 {
 		opt.RebalanceTimeout = 30 * time.Second
@@ -236,7 +242,7 @@ func (pr *Processor) partition(run, fence context.Context, gen *kafka.Generation
 		// is read and dead-lettered instead of blocking the partition.
 		MaxBytes:      8 << 20,
 		MaxWait:       500 * time.Millisecond,
-		QueueCapacity: 1000,
+		QueueCapacity: 10000,
 		ErrorLogger:   kafka.LoggerFunc(func(f string, a ...any) { log.Warn().Msgf(f, a...) }),
 	})
 	defer r.reader.Close()
@@ -312,6 +318,7 @@ func (r *partitionRun) resume(ctx context.Context) (int64, error) {
 	case next < first:
 		skipped := first - next
 		r.pr.skipped.Add(skipped)
+		r.pr.m.SkippedOffsets.Add(skipped)
 		r.log.Error().Int64("stored_next", next).Int64("log_start", first).Int64("skipped", skipped).
 			Msg("ANSWERS LOST: the stored offset is below the start of the log — those messages were deleted (retention) before this instance read them; continuing from the log start. Raise the answers topic's retention or consume faster")
 		return first, nil
@@ -454,6 +461,7 @@ func (r *partitionRun) commit(sync bool, now time.Time) error {
 		}
 		pr.m.ObserveCommit(time.Since(t0))
 		pr.m.Commits.Add(1)
+		pr.m.Committed.Add(int64(r.staged))
 		r.staged = 0
 		r.opened = time.Time{}
 		if r.outputs {

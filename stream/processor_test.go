@@ -2,6 +2,7 @@ package stream
 
 import (
 	"encoding/json"
+	"errors"
 	"fmt"
 	"os"
 	"path/filepath"
@@ -36,6 +37,9 @@ func TestEndToEnd(t *testing.T) {
 	wantRecs, wantIDs := expected(answers, reg.Current(), state.DefaultPolicy())
 	if got := rp.m.Applied.Load() + rp.m.Duplicates.Load(); got != int64(len(answers)) {
 		t.Errorf("applied %d + duplicates %d = %d, want %d", rp.m.Applied.Load(), rp.m.Duplicates.Load(), got, len(answers))
+	}
+	if got := rp.m.Committed.Load(); got != int64(len(answers)) {
+		t.Errorf("Committed = %d after shutdown, want every message read (%d)", got, len(answers))
 	}
 	if rp.m.DeadLettered.Load() != 0 {
 		t.Errorf("dead-lettered %d good answers", rp.m.DeadLettered.Load())
@@ -380,4 +384,34 @@ func TestRebalance(t *testing.T) {
 		}
 	}
 	checkOffsetsCommitted(t, b.Addr(), st)
+}
+
+// TestProcessorOptionsRejected: options the consumer group cannot work
+// with are refused with ErrConfig, naming the setting.
+func TestProcessorOptionsRejected(t *testing.T) {
+	st := openTestStore(t, t.TempDir())
+	defer st.Close()
+	base := ProcessorOptions{Brokers: []string{"127.0.0.1:1"}, Group: "g", Topic: "answers"}
+	for _, tc := range []struct {
+		name string
+		set  func(*ProcessorOptions)
+		want string
+	}{
+		{"heartbeat = session timeout", func(o *ProcessorOptions) { o.SessionTimeout, o.HeartbeatInterval = 6*time.Second, 6*time.Second }, "consumer.heartbeat_interval"},
+		{"heartbeat > session timeout", func(o *ProcessorOptions) { o.SessionTimeout, o.HeartbeatInterval = time.Second, 3*time.Second }, "consumer.session_timeout"},
+		{"bad start", func(o *ProcessorOptions) { o.Start = "middle" }, "consumer.start"},
+		{"no group", func(o *ProcessorOptions) { o.Group = "" }, "consumer group"},
+	} {
+		opt := base
+		tc.set(&opt)
+		_, err := NewProcessor(st, state.NewRegistry(nil), nil, NewMetrics(), opt)
+		if !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), tc.want) {
+			t.Errorf("%s: %v, want ErrConfig naming %s", tc.name, err, tc.want)
+		}
+	}
+	opt := base
+	opt.SessionTimeout, opt.HeartbeatInterval = 10*time.Second, 3*time.Second
+	if _, err := NewProcessor(st, state.NewRegistry(nil), nil, NewMetrics(), opt); err != nil {
+		t.Errorf("valid timings refused: %v", err)
+	}
 }

@@ -61,8 +61,10 @@ type Publisher struct {
 // given.
 var ErrConfig = errors.New("attain: stream configuration")
 
-// balancer returns the kafka-go balancer of a producer.balancer value.
-func balancer(name string) (kafka.Balancer, error) {
+// Balancer returns the kafka-go balancer of a producer.balancer value:
+// "murmur2" (or "") is the Java client's default partitioner, "crc32"
+// librdkafka's default for keyed messages.
+func Balancer(name string) (kafka.Balancer, error) {
 	switch name {
 	case "", "murmur2":
 		return kafka.Murmur2Balancer{}, nil
@@ -74,7 +76,7 @@ func balancer(name string) (kafka.Balancer, error) {
 
 // NewPublisher returns a publisher; Close releases its connections.
 func NewPublisher(st *state.Store, m *Metrics, opt PublisherOptions) (*Publisher, error) {
-	bal, err := balancer(opt.Balancer)
+	bal, err := Balancer(opt.Balancer)
 	if err != nil {
 		return nil, err
 	}

@@ -57,6 +57,12 @@ func TestStoredOffsetBelowLogStart(t *testing.T) {
 	if got := rp.proc.Skipped(); got != 30 {
 		t.Errorf("Skipped() = %d, want 30 (offsets 100-129)", got)
 	}
+	if got := rp.m.SkippedOffsets.Load(); got != 30 {
+		t.Errorf("SkippedOffsets = %d, want 30", got)
+	}
+	if got := rp.m.Committed.Load(); got != 20 {
+		t.Errorf("Committed = %d, want the 20 messages read", got)
+	}
 	checkOffsetsCommitted(t, b.Addr(), st)
 	st.Close()
 }

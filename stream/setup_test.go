@@ -164,6 +164,11 @@ func startProcessor(t testing.TB, addr string, st *state.Store, reg *state.Regis
 	if opt.SessionTimeout == 0 {
 		opt.SessionTimeout = 2 * time.Second
 	}
+	if opt.HeartbeatInterval == 0 {
+		// Frequent heartbeats: members see a rebalance sooner (the
+		// processor's default is a third of the session timeout).
+		opt.HeartbeatInterval = opt.SessionTimeout / 10
+	}
 	proc, err := NewProcessor(st, reg, pub, m, opt)
 	if err != nil {
 		t.Fatal(err)

@@ -7,6 +7,7 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"maps"
 	"os"
 	"path/filepath"
 	"slices"
@@ -144,6 +145,10 @@ func (opt demoOptions) run(ctx context.Context, stdout, stderr io.Writer) (err e
 	cfg.Brokers = nil                      // the daemon starts the embedded broker
 	cfg.EmbeddedBrokerAddr = "127.0.0.1:0" // on a free loopback port
 	cfg.HTTPAddr = "127.0.0.1:0"           // so does the HTTP API
+	// The half-way refit publishes its set to the params topic; the
+	// daemon's follower swaps it in, as every instance of a deployment
+	// would.
+	cfg.ParamsFromTopic = true
 	if err := cfg.Validate(); err != nil {
 		return err
 	}
@@ -356,6 +361,7 @@ func (r *demoRun) script() []demoStep {
 	return []demoStep{
 		{"producing the first half of the cohort", func(ctx context.Context) error { return r.produce(ctx, half) }},
 		// Steps acting on the half-way state go here.
+		{"refitting the parameters on the first half's history", r.refit},
 		{"producing the second half of the cohort", func(ctx context.Context) error { return r.produce(ctx, r.total) }},
 	}
 }
@@ -383,6 +389,8 @@ type demoRun struct {
 	malformed []demoMalformed
 
 	stage atomic.Pointer[string]
+	// swap is the half-way refit's outcome (nil until it has run).
+	swap atomic.Pointer[demoSwap]
 }
 
 func newDemoRun(opt demoOptions, cfg config.Config, sc fitjob.Scenario, gen *fitjob.Generator, log zerolog.Logger) *demoRun {
@@ -506,6 +514,7 @@ func (r *demoRun) send(ctx context.Context, n int) error {
 	// would make the final counts uncertain.
 	wctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), 30*time.Second)
 	defer cancel()
+	r.tally.sending(answers)
 	if err := r.writer.WriteMessages(wctx, msgs...); err != nil {
 		return fmt.Errorf("attain: demo: producing answers to %s: %w", r.cfg.Topics.Answers, err)
 	}
@@ -662,6 +671,7 @@ func (r *demoRun) snapshot() demoSnapshot {
 	s.MasteryTopic = r.cfg.Topics.Mastery
 	s.Threshold = r.cfg.Model.Threshold
 	s.StuckAfter = r.cfg.Model.StuckAfter
+	s.Swap = r.swap.Load()
 	return s
 }
 
@@ -702,6 +712,13 @@ type demoTally struct {
 		stuckEvents   int64
 		otherEvents   int64 // unreadable, or of a type or skill the demo does not know
 		deadLetters   []stream.DeadLetterBody
+
+		// The parameter swap: answer ids produced before it, and events
+		// by params_version on answers before and after it.
+		swapped                     bool
+		beforeSwap                  map[string]bool
+		versionBefore, versionAfter map[int64]int64
+		oddEvents                   []string
 	}
 }
 
@@ -721,7 +738,31 @@ func newDemoTally(skills []string) *demoTally {
 		t.mu.stuck[i] = map[string]bool{}
 	}
 	t.mu.stuckLearners = map[string]bool{}
+	t.mu.beforeSwap = map[string]bool{}
+	t.mu.versionBefore, t.mu.versionAfter = map[int64]int64{}, map[int64]int64{}
 	return t
+}
+
+// sending records the ids of answers about to be written before the
+// swap: before the write, since the processor may apply an answer and its
+// event be read back before the write call returns.
+func (t *demoTally) sending(answers []state.Answer) {
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	if t.mu.swapped {
+		return
+	}
+	for _, a := range answers {
+		t.mu.beforeSwap[a.ID] = true
+	}
+}
+
+// swapped marks the parameter swap: answers produced from now on come
+// after it.
+func (t *demoTally) swapped() {
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	t.mu.swapped = true
 }
 
 // produced records answers (and bad malformed messages) the broker has
@@ -789,6 +830,14 @@ func (t *demoTally) masteryEvent(msg kafka.Message) {
 		return
 	}
 	t.mu.ids[ev.ID] = true
+	if t.mu.beforeSwap[data.AnswerID] {
+		t.mu.versionBefore[data.ParamsVersion]++
+	} else {
+		t.mu.versionAfter[data.ParamsVersion]++
+		if t.mu.swapped && data.ParamsVersion == 1 && len(t.mu.oddEvents) < 3 {
+			t.mu.oddEvents = append(t.mu.oddEvents, fmt.Sprintf("%s %s/%s opp %d answer %s v%d", ev.Type, data.Learner, data.Skill, data.Opportunities, data.AnswerID, data.ParamsVersion))
+		}
+	}
 	switch ev.Type {
 	case state.KindReached.EventType():
 		t.mu.reachedEvents++
@@ -827,6 +876,9 @@ func (t *demoTally) snapshot() demoSnapshot {
 		OtherEvents:      t.mu.otherEvents,
 		StuckLearners:    len(t.mu.stuckLearners),
 		DeadLetterBodies: slices.Clone(t.mu.deadLetters),
+		VersionBefore:    maps.Clone(t.mu.versionBefore),
+		VersionAfter:     maps.Clone(t.mu.versionAfter),
+		OddEvents:        slices.Clone(t.mu.oddEvents),
 	}
 	learners := map[string]bool{}
 	for i, sk := range t.skills {
@@ -957,4 +1009,140 @@ func topicEnds(ctx context.Context, cl *kafka.Client, topic string, partitions i
 		}
 	}
 	return ends, nil
+}
+
+// The demo's gate: config's refit defaults (5 folds, margin 0) with
+// smaller data minimums — those of config's test fixture, 20 learners and
+// 200 answers — so that a cohort of a few dozen learners is refitted at
+// half-way too (our choice; a deployment keeps the defaults).
+const (
+	demoGateMinLearners = 20
+	demoGateMinAnswers  = 200
+	// demoSwapTimeout bounds the wait for the daemon's params follower to
+	// swap a published set in (it swaps once the topic has been quiet for
+	// 250 ms).
+	demoSwapTimeout = 15 * time.Second
+)
+
+// demoSwap is the outcome of the half-way refit.
+type demoSwap struct {
+	From, To int64 // versions; To == From when no skill was accepted
+	// AtAnswer is the number of answers applied when the new set came in
+	// force (production is paused meanwhile, so every answer before it was
+	// computed under From and every one after it under To).
+	AtAnswer           int64
+	Answers, Learners  int64 // the history the refit read
+	Accepted, Rejected int
+	Seconds            float64 // the refit (read, fit, gate)
+	Skills             []demoSwapSkill
+	Err                string // the refit failed: why (the run goes on under From)
+}
+
+// demoSwapSkill is one skill's row: the parameters before and after, the
+// simulation's truth, and the gate's verdict.
+type demoSwapSkill struct {
+	Skill         string
+	Before, After state.Params
+	Truth         state.Params
+	Accepted      bool
+	Reason        string // the gate's reason (shown for rejected skills)
+}
+
+// refit is the half-way step: once the processor has applied and committed
+// every answer produced so far, a gated refit reads the daemon's store
+// (fitjob.StoreSource on the open store: a Pebble snapshot, consumption is
+// not held up), the accepted skills are published to the params topic,
+// and the daemon's params follower swaps the new version in. A refit that
+// fails, or accepts nothing, is shown and the run goes on under version 1.
+func (r *demoRun) refit(ctx context.Context) error {
+	m, st := r.daemon.Metrics(), r.daemon.Store()
+	// Everything produced so far staged, then one commit round (the
+	// processor commits every batch.interval), so that the store's
+	// snapshot holds the whole first half.
+	for {
+		if m.Applied.Load()+m.Duplicates.Load()+m.DeadLettered.Load() >= r.tally.producedMessages() {
+			break
+		}
+		if r.daemonFailed() {
+			return errors.New("attain: demo: the daemon stopped before the refit")
+		}
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-time.After(20 * time.Millisecond):
+		}
+	}
+	select {
+	case <-ctx.Done():
+		return ctx.Err()
+	case <-time.After(3 * r.cfg.Batch.Interval):
+	}
+
+	brokers := r.daemon.Brokers()
+	cur, err := stream.ReadParams(ctx, brokers, r.cfg.Topics.Params, nil, r.log)
+	if err != nil {
+		return fmt.Errorf("attain: demo: reading the parameter set in force: %w", err)
+	}
+	sw := &demoSwap{From: cur.Version, To: cur.Version}
+	defer func() { r.swap.Store(sw) }()
+	rep, err := fitjob.GatedRefit(ctx, &fitjob.StoreSource{Store: st, Dir: r.cfg.DataDir}, fitjob.GatedRefitOptions{
+		Gate:    fitjob.GateOptions{MinLearners: demoGateMinLearners, MinAnswers: demoGateMinAnswers, Margin: r.cfg.Refit.Margin},
+		Folds:   r.cfg.Refit.Folds,
+		Seed:    r.opt.Seed,
+		Current: cur,
+		Sorter:  fitjob.SorterOptions{Dir: r.cfg.DataDir, Logger: r.log},
+		Logger:  r.log,
+	})
+	if err != nil {
+		if ctx.Err() != nil {
+			return ctx.Err()
+		}
+		sw.Err = err.Error()
+		r.log.Error().Err(err).Msg("demo: the half-way refit failed; the run goes on under the set in force")
+		return nil
+	}
+	sw.Answers, sw.Learners = rep.Data.Answers, rep.Data.Learners
+	sw.Accepted, sw.Rejected, sw.Seconds = rep.Accepted, rep.Rejected, rep.ElapsedSeconds
+	for _, sk := range r.sc.Skills {
+		row := demoSwapSkill{Skill: sk.Skill, Truth: sk.Params}
+		row.Before, _ = cur.For(sk.Skill)
+		row.After = row.Before
+		if v, ok := rep.Skill(sk.Skill); ok {
+			row.Reason = v.Reason
+			row.Accepted = v.Verdict.Accepted()
+			if !row.Accepted {
+				row.Reason = v.Verdict.String() + ": " + v.Reason
+			}
+		} else {
+			row.Reason = "no answers in the history"
+		}
+		if p, ok := rep.Publish[sk.Skill]; ok {
+			row.After = p.Params
+		}
+		sw.Skills = append(sw.Skills, row)
+	}
+	if rep.File == nil {
+		return nil
+	}
+	if _, err := stream.PublishParams(ctx, stream.ParamsPublishOptions{Brokers: brokers, Topic: r.cfg.Topics.Params, Logger: r.log}, rep.Version, rep.Publish); err != nil {
+		if ctx.Err() != nil {
+			return ctx.Err()
+		}
+		sw.Err = err.Error()
+		return nil
+	}
+	deadline := time.Now().Add(demoSwapTimeout)
+	for m.ParamsVersion.Load() < rep.Version {
+		if time.Now().After(deadline) {
+			return fmt.Errorf("attain: demo: version %d was published to %s but the daemon did not swap it in within %v", rep.Version, r.cfg.Topics.Params, demoSwapTimeout)
+		}
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-time.After(10 * time.Millisecond):
+		}
+	}
+	sw.To, sw.AtAnswer = rep.Version, m.Applied.Load()
+	r.tally.swapped()
+	return nil
 }

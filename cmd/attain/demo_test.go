@@ -153,6 +153,7 @@ func TestDemoRunsToTheEnd(t *testing.T) {
 	if reached := demoNumber(t, out, `attain\.mastery: ([\d,]+) reached`); reached < easy {
 		t.Errorf("%d reached events read back, fewer than the %d learners who mastered journal-entries", reached, easy)
 	}
+	checkSwap(t, out, 6*perSkill/2)
 	if !strings.Contains(out, "data removed") {
 		t.Errorf("the summary does not say the data directory was removed:\n%s", out)
 	}
@@ -224,5 +225,49 @@ func TestDemoBadFlags(t *testing.T) {
 		case tc.want != "" && (err == nil || !strings.Contains(err.Error(), tc.want)):
 			t.Errorf("%v: err = %v, want one containing %q", tc.args, err, tc.want)
 		}
+	}
+}
+
+// checkSwap checks the half-way refit in the summary: version 1 gave way
+// to version 2 once the first half (half answers) was applied; the table
+// lists every skill with its parameters before, after and the truth; the
+// events on answers before the swap all carry version 1 and those after
+// it all version 2, some of each.
+func checkSwap(t *testing.T, out string, half int64) {
+	t.Helper()
+	if at := demoNumber(t, out, `(?m)^params v1 → v2 at answer ([\d,]+): \d+ of 6 skills refitted$`); at != half {
+		t.Errorf("the swap came at answer %d, want %d (the first half)", at, half)
+	}
+	accepted := 0
+	f := func(x float64) string { return strings.TrimPrefix(strconv.FormatFloat(x, 'f', 2, 64), "0") }
+	num := `(\.\d\d|1\.00)`
+	for _, sk := range fitjob.HarbourLane().Skills {
+		// skill[*], then per parameter: v1 → v2 truth.
+		p := sk.Params
+		re := regexp.MustCompile(`(?m)^` + regexp.QuoteMeta(sk.Skill) + `(\*?) +` +
+			`\.30→` + num + ` ` + regexp.QuoteMeta(f(p.Prior)) + ` +` +
+			`\.10→` + num + ` ` + regexp.QuoteMeta(f(p.Learn)) + ` +` +
+			`\.20→` + num + ` ` + regexp.QuoteMeta(f(p.Guess)) + ` +` +
+			`\.10→` + num + ` ` + regexp.QuoteMeta(f(p.Slip)) + `$`)
+		m := re.FindStringSubmatch(out)
+		if m == nil {
+			t.Errorf("the swap table has no row for %s with v1's defaults and the truth %+v:\n%s", sk.Skill, p, out)
+			continue
+		}
+		if m[1] == "" {
+			accepted++
+		} else if m[2] != ".30" || m[3] != ".10" || m[4] != ".20" || m[5] != ".10" {
+			t.Errorf("%s was rejected but its v2 parameters changed: %v", sk.Skill, m[2:])
+		}
+	}
+	if got := demoNumber(t, out, `(?m)^params v1 → v2 at answer [\d,]+: (\d+) of 6`); got != int64(accepted) {
+		t.Errorf("%d skills said refitted, %d rows without the rejected mark", got, accepted)
+	}
+	m := regexp.MustCompile(`(?m)^events by params_version: on answers before the swap (.*); after it (.*)$`).FindStringSubmatch(out)
+	if m == nil {
+		t.Fatalf("no events-by-version line:\n%s", out)
+	}
+	if !regexp.MustCompile(`^v1 [\d,]+$`).MatchString(m[1]) || !regexp.MustCompile(`^v2 [\d,]+$`).MatchString(m[2]) {
+		t.Errorf("events by version: before the swap %q (want only v1), after it %q (want only v2)", m[1], m[2])
 	}
 }

@@ -3,6 +3,7 @@ package main
 import (
 	"fmt"
 	"io"
+	"slices"
 	"strconv"
 	"strings"
 	"time"
@@ -33,6 +34,15 @@ type demoSnapshot struct {
 	MasteryTopic, DeadLetterTopic string
 	Threshold                     float64
 	StuckAfter                    int
+
+	// Swap is the half-way refit (nil before it); VersionBefore and
+	// VersionAfter count events read back by params_version, on answers
+	// produced before and after the swap.
+	Swap                        *demoSwap
+	VersionBefore, VersionAfter map[int64]int64
+	// OddEvents are (up to three) events on answers after the swap that
+	// carry the old version.
+	OddEvents []string
 }
 
 // demoSkillRow is one skill's line of the view and the summary.
@@ -67,6 +77,7 @@ type demoView struct {
 	lastPlain time.Time
 	lastStage string
 	samples   []demoSample
+	swapShown bool // plain output: the swap's lines are written once
 }
 
 type demoSample struct {
@@ -111,6 +122,12 @@ func (v *demoView) update(s demoSnapshot) {
 	if s.Stage != v.lastStage {
 		fmt.Fprintf(v.w, "%7s  %s\n", seconds(now.Sub(v.start)), s.Stage)
 		v.lastStage = s.Stage
+	}
+	if s.Swap != nil && !v.swapShown {
+		for _, l := range swapLines(s.Swap) {
+			fmt.Fprintf(v.w, "%7s  %s\n", "", l)
+		}
+		v.swapShown = true
 	}
 	if now.Sub(v.lastPlain) >= demoPlainEvery {
 		v.plainLine(now, s, applRate)
@@ -170,6 +187,12 @@ func (v *demoView) frame(now time.Time, s demoSnapshot, prodRate, applRate float
 	lines = append(lines, "",
 		fmt.Sprintf("  stuck learners: %s · outbox depth: %s", thousands(int64(s.StuckLearners)), thousands(s.OutboxDepth)),
 		fmt.Sprintf("  dead letters: %s (see %s)", thousands(s.DeadLettered), s.DeadLetterTopic))
+	if s.Swap != nil {
+		lines = append(lines, "")
+		for _, l := range swapLines(s.Swap) {
+			lines = append(lines, "  "+l)
+		}
+	}
 	return lines
 }
 
@@ -362,6 +385,22 @@ func writeDemoSummary(w io.Writer, s demoSummary) {
 	lines(table("", rows))
 	line("")
 
+	// The half-way refit and swap.
+	if s.Swap != nil {
+		lines(swapLines(s.Swap))
+		for _, k := range s.Swap.Skills {
+			if !k.Accepted {
+				lines(wrap(k.Skill+": "+k.Reason, "  ", "      ", viewColumns))
+			}
+		}
+		line(fmt.Sprintf("events by params_version: on answers before the swap %s; after it %s",
+			versionCounts(s.VersionBefore), versionCounts(s.VersionAfter)))
+		for _, e := range s.OddEvents {
+			lines(wrap("after the swap under the old version: "+e, "  ", "      ", viewColumns))
+		}
+		line("")
+	}
+
 	// Totals.
 	done := s.Applied + s.Duplicates + s.DeadLettered
 	learners := "learners: " + thousands(int64(s.Learners))
@@ -393,4 +432,64 @@ func writeDemoSummary(w io.Writer, s demoSummary) {
 	line(fmt.Sprintf("elapsed %s (answers produced over %s, %s a second)",
 		seconds(s.Elapsed), seconds(s.Producing), thousands(int64(rate+0.5))))
 	io.WriteString(w, b.String())
+}
+
+// swapLines describe the half-way refit: the versions and when the new
+// one came in, then per skill the parameters before and after beside the
+// simulation's truth.
+func swapLines(sw *demoSwap) []string {
+	if sw == nil {
+		return nil
+	}
+	if sw.Err != "" {
+		return wrap("half-way refit failed, params v"+strconv.FormatInt(sw.From, 10)+" stay in force: "+sw.Err, "", "  ", viewColumns)
+	}
+	var out []string
+	if sw.To == sw.From {
+		out = append(out, fmt.Sprintf("half-way refit: the gate rejected every skill; params v%d stay in force", sw.From))
+	} else {
+		out = append(out, fmt.Sprintf("params v%d → v%d at answer %s: %d of %d skills refitted", sw.From, sw.To,
+			thousands(sw.AtAnswer), sw.Accepted, sw.Accepted+sw.Rejected))
+	}
+	out = append(out, fmt.Sprintf("(refit on %s answers of %s learners in %s; each cell: v%d → v%d, then the truth)",
+		thousands(sw.Answers), thousands(sw.Learners), seconds(time.Duration(sw.Seconds*float64(time.Second))), sw.From, sw.To))
+	rows := [][]string{{"skill", "prior", "learn", "guess", "slip"}}
+	f := func(x float64) string {
+		s := strconv.FormatFloat(x, 'f', 2, 64)
+		return strings.TrimPrefix(s, "0")
+	}
+	cell := func(b, a, t float64) string { return f(b) + "→" + f(a) + " " + f(t) }
+	rejected := false
+	for _, k := range sw.Skills {
+		name := k.Skill
+		if !k.Accepted {
+			name += "*"
+			rejected = true
+		}
+		rows = append(rows, []string{name,
+			cell(k.Before.Prior, k.After.Prior, k.Truth.Prior), cell(k.Before.Learn, k.After.Learn, k.Truth.Learn),
+			cell(k.Before.Guess, k.After.Guess, k.Truth.Guess), cell(k.Before.Slip, k.After.Slip, k.Truth.Slip)})
+	}
+	out = append(out, table("", rows)...)
+	if rejected {
+		out = append(out, fmt.Sprintf("* rejected by the gate: keeps the parameters of v%d", sw.From))
+	}
+	return out
+}
+
+// versionCounts spells event counts by params version: "v1 352, v2 3".
+func versionCounts(m map[int64]int64) string {
+	if len(m) == 0 {
+		return "none"
+	}
+	vs := make([]int64, 0, len(m))
+	for v := range m {
+		vs = append(vs, v)
+	}
+	slices.Sort(vs)
+	parts := make([]string, len(vs))
+	for i, v := range vs {
+		parts[i] = fmt.Sprintf("v%d %s", v, thousands(m[v]))
+	}
+	return strings.Join(parts, ", ")
 }

@@ -371,7 +371,10 @@ func TestRunCrashRecovery(t *testing.T) {
 		// A new group per killed instance: the store's offsets, not the
 		// group's, decide where consumption resumes, and a fresh group
 		// need not wait for the killed member's session to expire.
-		return []string{"ATTAIN_CONSUMER_GROUP=" + group, "ATTAIN_LOG_LEVEL=info"}
+		// A short session timeout: the last instance waits that long for
+		// the killed member of its group to be declared dead.
+		return []string{"ATTAIN_CONSUMER_GROUP=" + group, "ATTAIN_LOG_LEVEL=info",
+			"ATTAIN_CONSUMER_SESSION_TIMEOUT=3s", "ATTAIN_CONSUMER_HEARTBEAT_INTERVAL=300ms"}
 	}
 	const kills = 4
 	for i := range kills {
