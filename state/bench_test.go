@@ -141,6 +141,30 @@ func BenchmarkApplyCommit(b *testing.B) {
 	b.ReportMetric(float64(st.CacheHits)/float64(max(1, st.CacheHits+st.CacheMisses)), "cache-hit-ratio")
 }
 
+// BenchmarkApplyStreamLike is the store's share of the stream benchmark
+// (stream/bench_test.go): 5000 learners over the six skills, so that every
+// learner is cached and most batches touch a learner once or twice,
+// committed every 2000 answers. Besides answers/s it reports the bytes
+// Pebble writes per answer: to the WAL, by flushes and by compactions.
+func BenchmarkApplyStreamLike(b *testing.B) {
+	s, err := OpenStore(b.TempDir(), StoreOptions{})
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer s.Close()
+	as := benchAnswers(b.N, 5000, 1)
+	runApply(b, s, as)
+	m := s.db.Metrics()
+	var flushed, compacted uint64
+	for _, l := range m.Levels {
+		flushed += l.TableBytesFlushed
+		compacted += l.TableBytesCompacted
+	}
+	b.ReportMetric(float64(m.WAL.BytesWritten)/float64(b.N), "wal-B/answer")
+	b.ReportMetric(float64(flushed)/float64(b.N), "flush-B/answer")
+	b.ReportMetric(float64(compacted)/float64(b.N), "compact-B/answer")
+}
+
 // BenchmarkApplyHotLearners is the cache-hit path: 100 learners, whose
 // records and id windows are all cached after their first answers.
 func BenchmarkApplyHotLearners(b *testing.B) {

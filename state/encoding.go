@@ -65,22 +65,32 @@ func (rv *recVal) push(h HistoryEntry) {
 // Record value, version 2: the 41 bytes of the record's fields as in
 // version 1, then tail_n(uvarint) tail_bytes(uvarint) and the tail's
 // entries, then the learner's applied-id window when this record carries
-// it: 0 (it does not) or 1 seq(uvarint) and the window's body (see
-// appendWindowBody). One record of a learner — the one its latest answer
-// updated — carries the current window (the one with the highest seq;
-// other records may keep older ones), so that an answer rewrites one key,
-// not a record and a window.
+// it: 0 (it does not); 1 seq(uvarint) and the window's body (see
+// appendWindowBody): the whole window; or 2 seq(uvarint) base(uvarint) and
+// a body holding only the ids added since the whole window of sequence
+// base, which another record of the learner carries.
+//
+// The record its latest answer updated carries the learner's current
+// window (the highest seq; others may keep older ones), so that an answer
+// rewrites one key, not a record and a window; and mostly as a delta from
+// the last whole window, since the ids are most of the value's bytes.
 func appendRecordVal(dst []byte, rv *recVal, w *window) []byte {
 	dst = append(dst, recordV2)
 	dst = appendRecordFields(dst, rv.rec)
 	dst = binary.AppendUvarint(dst, uint64(rv.tailN))
 	dst = binary.AppendUvarint(dst, uint64(len(rv.tail)))
 	dst = append(dst, rv.tail...)
-	if w == nil {
+	switch {
+	case w == nil:
 		return append(dst, 0)
+	case w.base == 0:
+		dst = append(dst, 1)
+		dst = binary.AppendUvarint(dst, w.seq)
+	default:
+		dst = append(dst, 2)
+		dst = binary.AppendUvarint(dst, w.seq)
+		dst = binary.AppendUvarint(dst, w.base)
 	}
-	dst = append(dst, 1)
-	dst = binary.AppendUvarint(dst, w.seq)
 	return appendWindowBody(dst, w)
 }
 
@@ -123,16 +133,23 @@ func decodeRecordVal(b []byte) (rv recVal, w *window, err error) {
 	switch {
 	case len(rest) == 1 && rest[0] == 0:
 		return rv, nil, nil
-	case len(rest) > 1 && rest[0] == 1:
-		seq, k := binary.Uvarint(rest[1:])
-		if k <= 0 {
-			return recVal{}, nil, fmt.Errorf("%w: record value has a bad window sequence", ErrCorruptStore)
+	case len(rest) > 1 && (rest[0] == 1 || rest[0] == 2):
+		r := reader{b: rest[1:]}
+		seq := r.uvarint()
+		var base uint64
+		if rest[0] == 2 {
+			if base = r.uvarint(); r.err == nil && (base == 0 || base >= seq) {
+				r.err = fmt.Errorf("delta window of sequence %d from base %d", seq, base)
+			}
 		}
-		dw, err := decodeWindowBody(rest[1+k:])
+		if r.err != nil {
+			return recVal{}, nil, fmt.Errorf("%w: record value has a bad window header: %v", ErrCorruptStore, r.err)
+		}
+		dw, err := decodeWindowBody(r.b)
 		if err != nil {
 			return recVal{}, nil, err
 		}
-		dw.seq = seq
+		dw.seq, dw.base = seq, base
 		return rv, &dw, nil
 	}
 	return recVal{}, nil, fmt.Errorf("%w: record value has a bad window section", ErrCorruptStore)
@@ -339,6 +356,7 @@ func forHistEntries(b []byte, n uint64, fn func(HistoryEntry)) (int64, error) {
 // window of 32 — far below any other failure rate of the system.
 type window struct {
 	seq    uint64 // answers applied to the learner (0 in schema 1 windows)
+	base   uint64 // as stored: 0 for a whole window; for a delta, the seq of the whole window it adds ids to
 	hasAt  bool
 	lastAt int64
 	ids    []uint64

@@ -12,9 +12,9 @@ import (
 //
 //	record   P 0x01 learner 0x00 skill              → appendRecordVal (the record and the tail of its history)
 //	history  P 0x02 learner 0x00 skill 0x00 opp(BE4) → appendHistoryChunk (answers opp, opp+1, …; schema 1: one answer)
-//	window   P 0x03 learner                         → encodeWindow (applied-id window, latest `at`)
-//	state    P 0x04                                 → encodePartState (consumed offset, next outbox seq, record count)
-//	outbox   P 0x05 seq(BE8)                        → encodeOutbox
+//	window   P 0x03 learner                         → appendWindow (schema 1 only: read, then deleted once a record carries the window)
+//	state    P 0x04                                 → appendPartState (consumed offset, next outbox seq, record count)
+//	outbox   P 0x05 seq(BE8)                        → appendOutbox
 //	meta     FFFFFFFF 0x06 name                     → store-wide metadata (schema version)
 //
 // Learner and skill names never contain NUL (the decoder and Apply reject

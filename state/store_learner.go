@@ -22,6 +22,12 @@ type learnerVal struct {
 	skills    []string    // sorted
 	recs      []*recState // recs[i] is skills[i]'s
 	legacyWin bool        // the window came from a schema 1 window key, which still exists
+	// baseRec carries the last whole window written, of sequence baseSeq
+	// (nil when none is stored); later windows are written as deltas from
+	// it (see appendRecordVal).
+	baseRec *recState
+	baseSeq uint64
+	newBase bool // the commit being written writes a whole window
 
 	// Staging, emptied by Commit.
 	dirty   []*recState // records changed since the last commit, in the order first changed
@@ -61,6 +67,25 @@ func (lv *learnerVal) stage(rs *recState, carrier bool) {
 	if carrier {
 		lv.carrier = rs
 	}
+}
+
+// maxWindowDelta is the most ids a delta window holds; past it the whole
+// window is written again (our choice: a delta of 8 ids is a quarter of
+// the default window, and most learners answer less often than that
+// between two answers on the skill that carries their whole window).
+const maxWindowDelta = 8
+
+// windowToWrite returns the window the carrier writes in the next commit:
+// a delta from the stored whole window (in buf) when there is one, it is
+// not rewritten in this commit, and few ids were added since; else the
+// whole window (whole = true).
+func (lv *learnerVal) windowToWrite(buf *window) (w *window, whole bool) {
+	d := lv.win.seq - lv.baseSeq
+	if lv.baseRec == nil || lv.baseRec.dirty || d > maxWindowDelta || d >= uint64(len(lv.win.ids)) {
+		return &lv.win, true
+	}
+	*buf = window{seq: lv.win.seq, base: lv.baseSeq, hasAt: lv.win.hasAt, lastAt: lv.win.lastAt, ids: lv.win.ids[len(lv.win.ids)-int(d):]}
+	return buf, false
 }
 
 // histChunk is a history chunk staged for its key: n answers from
@@ -107,7 +132,12 @@ func (pt *Partition) readLearner(lk []byte) (*learnerVal, error) {
 		return nil, fmt.Errorf("attain: partition %d: reading learner %q: %w", pt.p, lk, err)
 	}
 	lv := &learnerVal{key: string(lk)}
-	var win *window
+	type carried struct {
+		w  *window
+		rs *recState
+	}
+	var latest carried   // the window of the highest sequence
+	var wholes []carried // whole windows
 	for ok := it.First(); ok; ok = it.Next() {
 		v, err := it.ValueAndErr()
 		if err != nil {
@@ -121,14 +151,46 @@ func (pt *Partition) readLearner(lk []byte) (*learnerVal, error) {
 		}
 		rv.tail = bytes.Clone(rv.tail) // v is Pebble's, valid until Next
 		skill := pt.intern(it.Key()[len(lk):])
+		rs := &recState{skill: skill, rv: rv}
 		lv.skills = append(lv.skills, skill)
-		lv.recs = append(lv.recs, &recState{skill: skill, rv: rv})
-		if w != nil && (win == nil || w.seq >= win.seq) {
-			win = w
+		lv.recs = append(lv.recs, rs)
+		if w == nil {
+			continue
+		}
+		if w.base == 0 {
+			wholes = append(wholes, carried{w, rs})
+		}
+		if latest.w == nil || w.seq > latest.w.seq || (w.seq == latest.w.seq && w.base == 0) {
+			latest = carried{w, rs}
 		}
 	}
 	if err := errors.Join(it.Error(), it.Close()); err != nil {
 		return nil, fmt.Errorf("attain: partition %d: reading learner %q: %w", pt.p, lk, err)
+	}
+	var win *window
+	switch {
+	case latest.w == nil:
+	case latest.w.base == 0:
+		win, lv.baseRec, lv.baseSeq = latest.w, latest.rs, latest.w.seq
+	default:
+		// A delta: the whole window it adds to, then its ids, the last
+		// DedupeWindow of them.
+		var base *carried
+		for i := range wholes {
+			if wholes[i].w.seq == latest.w.base {
+				base = &wholes[i]
+			}
+		}
+		if base == nil {
+			return nil, fmt.Errorf("attain: partition %d: learner %q: %w: its id window is a delta from window %d, which no record holds",
+				pt.p, lk[partPrefixLen:len(lk)-1], ErrCorruptStore, latest.w.base)
+		}
+		ids := append(append(make([]uint64, 0, len(base.w.ids)+len(latest.w.ids)+1), base.w.ids...), latest.w.ids...)
+		if n := pt.s.opt.DedupeWindow; len(ids) > n {
+			ids = append(ids[:0], ids[len(ids)-n:]...)
+		}
+		win = &window{seq: latest.w.seq, hasAt: latest.w.hasAt, lastAt: latest.w.lastAt, ids: ids}
+		lv.baseRec, lv.baseSeq = base.rs, base.w.seq
 	}
 	if win == nil {
 		// No record carries a window: a new learner, or one last written

@@ -14,8 +14,8 @@
 // offset (stored offset + 1), or, when none is stored, to the start that
 // consumer.start names (earliest, or latest = the partition's last offset
 // at assignment). A stored offset below the log start (retention deleted
-// unread answers) is logged as an error and counted (Processor.Skipped);
-// reading continues from the log start.
+// unread answers) is logged as an error and counted (Processor.Skipped,
+// Metrics.SkippedOffsets); reading continues from the log start.
 //
 // Messages are decoded (Decoder; state.NativeDecoder for the native JSON
 // event), applied with state.Partition.Apply, and committed with
@@ -44,14 +44,16 @@
 //
 // # Outbox publishing
 //
-// After each commit the partition's committed outbox entries are sent in
-// order, in chunks, with synchronous writes acknowledged by all in-sync
-// replicas (RequiredAcks = RequireAll) and an explicit balancer
-// (producer.balancer: murmur2 as the Java client, crc32 as librdkafka),
-// then deleted from the store. A crash between the two re-sends the chunk
-// on restart; an assigned partition drains its outbox before it consumes.
-// A failed send is retried with a growing backoff while consumption goes
-// on.
+// After each commit with outputs, the partition's publishing goroutine
+// (owned by the partition's goroutine, which waits for it before it
+// finishes) sends the committed outbox entries in order, in chunks, with
+// synchronous writes acknowledged by all in-sync replicas (RequiredAcks =
+// RequireAll) and an explicit balancer (producer.balancer: murmur2 as the
+// Java client, crc32 as librdkafka; Balancer), then deletes them from the
+// store; consumption of the next batch goes on meanwhile. A crash between
+// the two re-sends the chunk on restart; an assigned partition drains its
+// outbox before it consumes. A failed send is retried with a growing
+// backoff while consumption goes on.
 //
 // Mastery events are CloudEvents 1.0 in structured JSON mode
 // (content-type application/cloudevents+json): specversion "1.0", id =

@@ -240,8 +240,13 @@ func (pr *Processor) partition(run, fence context.Context, gen *kafka.Generation
 		// Large enough for any message the broker accepts (Kafka's
 		// default message.max.bytes is 1 MiB), so that an oversized event
 		// is read and dead-lettered instead of blocking the partition.
-		MaxBytes:      8 << 20,
-		MaxWait:       500 * time.Millisecond,
+		MaxBytes: 8 << 20,
+		MaxWait:  500 * time.Millisecond,
+		// Messages read ahead: while the goroutine commits a batch (up to
+		// batch.max_answers = 2000 messages) the reader keeps fetching, so
+		// the next batch is waiting when the commit ends. 10000 (kafka-go's
+		// default is 100) gave about a tenth more answers/s than 1000 in
+		// BenchmarkThroughput; it is a few MiB per partition.
 		QueueCapacity: 10000,
 		ErrorLogger:   kafka.LoggerFunc(func(f string, a ...any) { log.Warn().Msgf(f, a...) }),
 	})
@@ -359,10 +364,17 @@ func (r *partitionRun) loop(stop context.Context) error {
 		if err := r.handle(&msg); err != nil {
 			return err
 		}
-		now := time.Now()
-		if r.staged >= opt.BatchMaxAnswers || now.Sub(r.opened) >= opt.BatchInterval {
-			if err := r.commit(false, now); err != nil {
-				return err
+		// The batch's age is looked at every 16 messages: the window
+		// context ends fetching at the batch's deadline anyway, so this
+		// only bounds how long a batch grows when messages never stop
+		// arriving (by 16 messages' work), at a sixteenth of the clock
+		// reads.
+		full := r.staged >= opt.BatchMaxAnswers
+		if full || r.staged&15 == 0 {
+			if now := time.Now(); full || now.Sub(r.opened) >= opt.BatchInterval {
+				if err := r.commit(false, now); err != nil {
+					return err
+				}
 			}
 		}
 	}
