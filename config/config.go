@@ -153,9 +153,9 @@ func Default() Config {
 			SessionTimeout:    10 * time.Second,
 			HeartbeatInterval: 3 * time.Second,
 		},
-		// Commit at least every 100 ms or 2000 answers (ARCHITECTURE.md,
+		// Commit at least every 100 ms or 10000 answers (ARCHITECTURE.md,
 		// Durability).
-		Batch: Batch{Interval: 100 * time.Millisecond, MaxAnswers: 2000},
+		Batch: Batch{Interval: 100 * time.Millisecond, MaxAnswers: 10000},
 		Cache: Cache{Records: 200_000, BlockCacheMB: 64},
 		// Sources of the thresholds are on state.Policy's fields.
 		Model:    Model{Threshold: pol.Threshold, StuckAfter: int(pol.StuckAfter)},

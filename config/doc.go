@@ -51,7 +51,7 @@
 //	consumer.session_timeout    ATTAIN_CONSUMER_SESSION_TIMEOUT    -                      10s
 //	consumer.heartbeat_interval ATTAIN_CONSUMER_HEARTBEAT_INTERVAL -                      3s
 //	batch.interval              ATTAIN_BATCH_INTERVAL              -                      100ms
-//	batch.max_answers           ATTAIN_BATCH_MAX_ANSWERS           -                      2000
+//	batch.max_answers           ATTAIN_BATCH_MAX_ANSWERS           -                      10000
 //	cache.records               ATTAIN_CACHE_RECORDS               -                      200000
 //	cache.block_cache_mb        ATTAIN_CACHE_BLOCK_CACHE_MB        -                      64
 //	model.threshold             ATTAIN_MODEL_THRESHOLD             -                      0.95

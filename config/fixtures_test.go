@@ -141,7 +141,7 @@ var badFixtures = map[string]struct {
 	"wrong-types.bad.yml": {problems: 7, want: []string{
 		`brokers: must be a list, not "kafka-1:9092" (line 1`, "fix: write it as a list such as [kafka-1:9092, kafka-2:9092]",
 		`batch.interval: "fast" is not a duration (line 3`, "fix: set batch.interval to a Go duration such as 100ms",
-		`batch.max_answers: "lots" is not an integer`, "set batch.max_answers to an integer such as 2000",
+		`batch.max_answers: "lots" is not an integer`, "set batch.max_answers to an integer such as 10000",
 		"model.threshold: must be a number, not a list (line 6",
 		// yaml.v3 refuses a bare number for a duration.
 		`refit.interval: "3600" is not a duration (line 8`, "set refit.interval to a Go duration such as 1h",
@@ -185,7 +185,7 @@ var badFixtures = map[string]struct {
 		"consumer.dedupe_window: must be between 1 and 10000 (got 0); fix: set consumer.dedupe_window to e.g. 32",
 		// The example of the brief, word for word.
 		"batch.interval: must be between 1ms and 10s (got 0s); fix: set batch.interval to e.g. 100ms",
-		"batch.max_answers: must be at least 1 (got 0); fix: set batch.max_answers to e.g. 2000",
+		"batch.max_answers: must be at least 1 (got 0); fix: set batch.max_answers to e.g. 10000",
 		"cache.records: must be at least 1 (got -1); the store has no setting without a record cache",
 		"cache.block_cache_mb: must be between 1 and 1048576 MiB (got 0); fix: set cache.block_cache_mb to e.g. 64",
 		"model.threshold: must be strictly between 0 and 1 (got 1.5); fix: set model.threshold to e.g. 0.95",

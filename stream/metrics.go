@@ -42,6 +42,10 @@ type Metrics struct {
 
 	// Commits counts state batches committed to the store.
 	Commits atomic.Int64
+	// MaxBatchAge is the longest time, in nanoseconds, from a batch's
+	// first message to the end of its commit (what batch.interval bounds,
+	// plus the commit itself).
+	MaxBatchAge atomic.Int64
 	// Committed counts input messages whose batch has been committed to
 	// the store (applied, duplicate, dead-lettered or already applied
 	// before: every message that will not be read again after a crash).
@@ -102,6 +106,16 @@ func (m *Metrics) ObserveCommit(d time.Duration) {
 	m.commit.counts[i]++
 	m.commit.sum += s
 	m.commit.mu.Unlock()
+}
+
+// ObserveBatchAge records the age of a batch when its commit ended.
+func (m *Metrics) ObserveBatchAge(d time.Duration) {
+	for {
+		cur := m.MaxBatchAge.Load()
+		if int64(d) <= cur || m.MaxBatchAge.CompareAndSwap(cur, int64(d)) {
+			return
+		}
+	}
 }
 
 // SetLag records how many messages partition p is behind the end of its
@@ -197,6 +211,7 @@ func (m *Metrics) WritePrometheus(w io.Writer, outboxDepth int64) {
 	e.counter("attain_deadletters_published_total", "Dead letters acknowledged by the broker.", m.PublishedDeadLetters.Load())
 
 	e.counter("attain_commits_total", "State batches committed to the store.", m.Commits.Load())
+	e.gauge("attain_batch_age_max_seconds", "Longest time from a batch's first message to the end of its commit, since start.", float64(m.MaxBatchAge.Load())/1e9)
 	e.counter("attain_messages_committed_total", "Input messages whose batch has been committed to the store.", m.Committed.Load())
 	e.counter("attain_offsets_skipped_total", "Input offsets never read because the log no longer held them (retention deleted them first).", m.SkippedOffsets.Load())
 	m.writeCommitHistogram(&e)

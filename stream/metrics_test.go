@@ -415,6 +415,9 @@ func TestWritePrometheus(t *testing.T) {
 	} {
 		m.ObserveCommit(d)
 	}
+	for _, d := range []time.Duration{80 * time.Millisecond, 130 * time.Millisecond, 90 * time.Millisecond} {
+		m.ObserveBatchAge(d) // the largest is kept
+	}
 	m.SetAssigned([]int32{3, 0, 11})
 	m.SetResumed(0)
 	m.SetLag(3, 42)
@@ -445,6 +448,7 @@ func TestWritePrometheus(t *testing.T) {
 		"attain_records_rederived_total":       4,
 		"attain_deadletters_published_total":   1,
 		"attain_commits_total":                 6,
+		"attain_batch_age_max_seconds":         0.13,
 		"attain_messages_committed_total":      8,
 		"attain_offsets_skipped_total":         9,
 		"attain_outbox_depth":                  17,
