@@ -433,8 +433,8 @@ func TestRefitLoopCancelled(t *testing.T) {
 // consumption. A partition of 2,000 learners × 3 skills with 50 answers
 // each is applied under version 1; then each iteration streams 10,000
 // answers through Partition.Apply under reg.Current(), exactly as the
-// processor's partition loop does (a commit every 2,000 answers, the
-// processor's batch.max_answers default), with Registry.Swap to the next
+// processor's partition loop does (a commit every 2,000 answers: about
+// 40 ms of a busy partition), with Registry.Swap to the next
 // version after the first 5,000 — so the answers after it are first
 // touches that re-derive a 50+-answer history before applying. Reported:
 //

@@ -2,8 +2,6 @@ package main
 
 import (
 	"context"
-	"errors"
-	"flag"
 	"fmt"
 	"io"
 	"os"
@@ -21,26 +19,13 @@ func init() {
 }
 
 func runBroker(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("broker", flag.ContinueOnError)
-	fs.SetOutput(stderr)
-	fs.Usage = func() {
-		fmt.Fprintln(stderr, "usage: attain broker [--config FILE] [--addr ADDR] [--dir DIR]")
-		fmt.Fprintln(stderr, "\nRuns the embedded broker until SIGINT or SIGTERM, with the configured topics created, and prints its address. Topics, offsets and groups are kept under --dir (default: in memory only).\n\nflags:")
-		fs.PrintDefaults()
-	}
+	fs := newFlags("broker", "usage: attain broker [--config FILE] [--addr ADDR] [--dir DIR]",
+		"Runs the embedded broker until SIGINT or SIGTERM, with the configured topics created, and prints its address. Topics, offsets and groups are kept under --dir (default: in memory only).", stderr)
 	configPath := fs.String("config", "", "YAML config file (env ATTAIN_CONFIG): topic names, topics.partitions, log")
 	addr := fs.String("addr", "", "listen address host:port (default: embedded_broker_addr, "+config.Default().EmbeddedBrokerAddr+")")
 	dir := fs.String("dir", "", "directory to keep the broker's data in (default: memory only)")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return err
-		}
-		return errUsage
-	}
-	if fs.NArg() > 0 {
-		fmt.Fprintf(stderr, "attain broker: unexpected argument %q\n", fs.Arg(0))
-		fs.Usage()
-		return errUsage
+	if err := parseFlags(fs, args, stderr, true); err != nil {
+		return err
 	}
 	cfg, err := config.Load(*configPath, os.Environ(), nil)
 	if err != nil {

@@ -4,7 +4,6 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
-	"flag"
 	"fmt"
 	"io"
 	"maps"
@@ -79,24 +78,16 @@ type demoOptions struct {
 }
 
 func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("demo", flag.ContinueOnError)
-	fs.SetOutput(stderr)
-	fs.Usage = func() {
-		fmt.Fprintln(stderr, "usage: attain demo [--learners N] [--seed S] [--speed X] [--duration D] [--keep DIR]")
-		fmt.Fprintln(stderr, "\nRuns everything in one process: the embedded broker, the processor daemon with its HTTP API, and a simulated cohort of the Harbour Lane Evening College scenario answering practice items, with a live view of mastery per skill and a summary at the end. Ctrl-C ends early with the same summary.\n\nflags:")
-		fs.PrintDefaults()
-	}
+	fs := newFlags("demo", "usage: attain demo [--learners N] [--seed S] [--speed X] [--duration D] [--keep DIR]",
+		"Runs everything in one process: the embedded broker, the processor daemon with its HTTP API, and a simulated cohort of the Harbour Lane Evening College scenario answering practice items, with a live view of mastery per skill and a summary at the end. Ctrl-C ends early with the same summary.", stderr)
 	var opt demoOptions
 	fs.IntVar(&opt.Learners, "learners", demoLearners, "learners in the simulated cohort (each answers 30 items at each of the 6 skills)")
 	fs.Int64Var(&opt.Seed, "seed", 1, "random seed: the same seed simulates the same cohort")
 	fs.Float64Var(&opt.Speed, "speed", 1, "pace multiplier: 2 produces the cohort in half of --duration")
 	fs.DurationVar(&opt.Duration, "duration", demoDuration, "time to produce the whole cohort in at --speed 1")
 	fs.StringVar(&opt.Keep, "keep", "", "keep the store, the broker's data and the daemon's log in `DIR` (empty or absent); default: a temporary directory, removed at the end")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return err
-		}
-		return errUsage
+	if err := parseFlags(fs, args, stderr, false); err != nil {
+		return err
 	}
 	switch {
 	case fs.NArg() > 0:
@@ -205,7 +196,7 @@ func (opt demoOptions) run(ctx context.Context, stdout, stderr io.Writer) (err e
 	}
 
 	// 3. The producer of the answers topic.
-	bal, err := demoBalancer(cfg.Producer.Balancer)
+	bal, err := stream.Balancer(cfg.Producer.Balancer)
 	if err != nil {
 		return err
 	}
@@ -309,16 +300,6 @@ func demoDataDir(keep string) (string, func() error, error) {
 		return "", nil, fmt.Errorf("--keep %s: the directory is not empty; give an empty or new directory (an earlier run's data would be resumed and mixed into the counts)", keep)
 	}
 	return keep, func() error { return nil }, nil
-}
-
-func demoBalancer(name string) (kafka.Balancer, error) {
-	switch name {
-	case "", "murmur2":
-		return kafka.Murmur2Balancer{}, nil
-	case "crc32":
-		return kafka.CRC32Balancer{}, nil
-	}
-	return nil, fmt.Errorf("attain: demo: producer.balancer = %q: must be murmur2 or crc32", name)
 }
 
 // demoDaemon owns the daemon's goroutine.

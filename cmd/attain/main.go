@@ -23,6 +23,37 @@ type command struct {
 
 var errUsage = errors.New("usage")
 
+// newFlags returns a command's flag set, whose usage prints the usage
+// line, what the command does, and its flags.
+func newFlags(name, usage, about string, stderr io.Writer) *flag.FlagSet {
+	fs := flag.NewFlagSet(name, flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	fs.Usage = func() {
+		fmt.Fprintln(stderr, usage)
+		fmt.Fprintf(stderr, "\n%s\n\nflags:\n", about)
+		fs.PrintDefaults()
+	}
+	return fs
+}
+
+// parseFlags parses a command's arguments: -h gives flag.ErrHelp; a bad
+// flag, or with noArgs an argument that is not a flag, gives errUsage
+// after saying why.
+func parseFlags(fs *flag.FlagSet, args []string, stderr io.Writer, noArgs bool) error {
+	if err := fs.Parse(args); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return err
+		}
+		return errUsage
+	}
+	if noArgs && fs.NArg() > 0 {
+		fmt.Fprintf(stderr, "attain %s: unexpected argument %q\n", fs.Name(), fs.Arg(0))
+		fs.Usage()
+		return errUsage
+	}
+	return nil
+}
+
 // commands lists the subcommands; each lives in a file of its own.
 var commands = map[string]command{}
 

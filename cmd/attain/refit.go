@@ -79,11 +79,8 @@ func runRefit(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	order := fs.String("order", "", "order of each learner's answers: \"at\" (by time, ties in source order; the default for files) or \"arrival\" (source order; the default for topics)")
 	items := fs.String("items", "", "item map, JSON {\"item\": [\"skill\", ...]}, for events that name an item but no skills (default: items_file of the config)")
 	scratch := fs.String("scratch", "", "folder for the on-disk grouping of the history, about 25 bytes per answer (default: the system temporary folder)")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return err
-		}
-		return errUsage
+	if err := parseFlags(fs, args, stderr, false); err != nil {
+		return err
 	}
 	set := map[string]bool{}
 	fs.Visit(func(f *flag.Flag) { set[f.Name] = true })

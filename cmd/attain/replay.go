@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"errors"
 	"flag"
 	"fmt"
 	"io"
@@ -35,13 +34,8 @@ func (l *listFlag) String() string     { return strings.Join(*l, ",") }
 func (l *listFlag) Set(s string) error { *l = append(*l, s); return nil }
 
 func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("replay", flag.ContinueOnError)
-	fs.SetOutput(stderr)
-	fs.Usage = func() {
-		fmt.Fprintln(stderr, "usage: attain replay --from FILE|topic:NAME --out DIR [--params FILE|topic:NAME]... [--threshold X]... [--stuck-after N]... [--order at|arrival] [--dedupe-window N] [--items FILE] [--brokers LIST] [--config FILE]")
-		fmt.Fprintln(stderr, "\nRuns answer history through the model without touching any store, consumer group or offset, and writes DIR/predictions.csv (the prediction before every answer), DIR/events.csv (the reached/stuck events the first parameter set and thresholds would have raised), DIR/metrics.json and DIR/report.html. --threshold and --stuck-after may be repeated to compare thresholds (every combination is replayed); --params may be repeated to compare parameter sets on the same history. Learners' state is kept in memory: nothing outside DIR is written, no consumer group is joined. A file whose answers are in time order per learner is streamed; one that is not, standard input, and a topic are held in memory (about 80 bytes an answer) to be put in order.\n\nflags:")
-		fs.PrintDefaults()
-	}
+	fs := newFlags("replay", "usage: attain replay --from FILE|topic:NAME --out DIR [--params FILE|topic:NAME]... [--threshold X]... [--stuck-after N]... [--order at|arrival] [--dedupe-window N] [--items FILE] [--brokers LIST] [--config FILE]",
+		"Runs answer history through the model without touching any store, consumer group or offset, and writes DIR/predictions.csv (the prediction before every answer), DIR/events.csv (the reached/stuck events the first parameter set and thresholds would have raised), DIR/metrics.json and DIR/report.html. --threshold and --stuck-after may be repeated to compare thresholds (every combination is replayed); --params may be repeated to compare parameter sets on the same history. Learners' state is kept in memory: nothing outside DIR is written, no consumer group is joined. A file whose answers are in time order per learner is streamed; one that is not, standard input, and a topic are held in memory (about 80 bytes an answer) to be put in order.", stderr)
 	var params, thresholds, stuckAfters listFlag
 	from := fs.String("from", "", "answer history: a JSON-lines file of native v1 events (\"-\" = standard input), or topic:NAME")
 	out := fs.String("out", "", "folder to write predictions.csv, events.csv, metrics.json and report.html to (created if missing)")
@@ -54,11 +48,8 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	brokers := fs.String("brokers", "", "Kafka bootstrap brokers (comma list) for topic: sources (default: brokers of the config)")
 	configPath := fs.String("config", "", "YAML config file for defaults (model thresholds, dedupe window, brokers, params file)")
 	listed := fs.Int("list-rejected", fitjob.DefaultRejectsListed, "rejected records to list in metrics.json and the report (all are counted)")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return err
-		}
-		return errUsage
+	if err := parseFlags(fs, args, stderr, false); err != nil {
+		return err
 	}
 	switch {
 	case fs.NArg() > 0:

@@ -2,8 +2,6 @@ package main
 
 import (
 	"context"
-	"errors"
-	"flag"
 	"fmt"
 	"io"
 	"os"
@@ -21,13 +19,8 @@ func init() {
 }
 
 func runSimulate(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("simulate", flag.ContinueOnError)
-	fs.SetOutput(stderr)
-	fs.Usage = func() {
-		fmt.Fprintln(stderr, "usage: attain simulate --out FILE [--learners N] [--opportunities N] [--seed S] [--skills LIST] [--items N] [--truth FILE]")
-		fmt.Fprintln(stderr, "\nWrites a simulated cohort of the Harbour Lane scenario (or the listed skills) as native v1 JSON lines, in `at` order, and its true parameters as a parameter file.\n\nflags:")
-		fs.PrintDefaults()
-	}
+	fs := newFlags("simulate", "usage: attain simulate --out FILE [--learners N] [--opportunities N] [--seed S] [--skills LIST] [--items N] [--truth FILE]",
+		"Writes a simulated cohort of the Harbour Lane scenario (or the listed skills) as native v1 JSON lines, in `at` order, and its true parameters as a parameter file.", stderr)
 	sc := fitjob.HarbourLane()
 	defaultSkills := make([]string, len(sc.Skills))
 	for i, s := range sc.Skills {
@@ -40,16 +33,8 @@ func runSimulate(ctx context.Context, args []string, stdout, stderr io.Writer) e
 	items := fs.Int("items", 40, "practice items per skill")
 	seed := fs.Int64("seed", 1, "random seed: the same seed writes the same cohort")
 	skills := fs.String("skills", strings.Join(defaultSkills, ","), "comma-separated skills; the scenario's own skills keep their true parameters, other names get parameters drawn from the seed")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return err
-		}
-		return errUsage
-	}
-	if fs.NArg() > 0 {
-		fmt.Fprintf(stderr, "attain simulate: unexpected argument %q\n", fs.Arg(0))
-		fs.Usage()
-		return errUsage
+	if err := parseFlags(fs, args, stderr, true); err != nil {
+		return err
 	}
 	if *out == "" {
 		fmt.Fprintln(stderr, "attain simulate: --out is required: the file to write the answers to")
