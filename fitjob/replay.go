@@ -7,6 +7,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"hash/maphash"
 	"io"
 	"math"
 	"os"
@@ -14,9 +15,11 @@ import (
 	"runtime"
 	"slices"
 	"strconv"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
+	"unsafe"
 
 	"github.com/rs/zerolog"
 
@@ -44,8 +47,9 @@ import (
 //     across learners — about 80 bytes each.
 //
 // A file already in `at` order per learner (what the simulator and an
-// export sorted by time give) streams: one reader, Workers decoding
-// goroutines and the applier, with a few MiB of buffers.
+// export sorted by time give) streams through a pipeline (filePass): one
+// reader, Workers goroutines that decode lines and render rows, the
+// applier and a writer, with a few MiB of buffers.
 
 // Errors of replay, checked with errors.Is.
 var (
@@ -214,6 +218,40 @@ type Replay struct {
 	sorting                        atomic.Bool
 
 	cur *replayer // the pass in progress (RunSource's Reject writes to it)
+
+	// skillNames interns skill names (name → the same name, a copy owned
+	// here): the decoding goroutines give the applier these copies, so
+	// that comparing two equal names (skillOf) compares two pointers and
+	// reads no byte of either.
+	skillNames sync.Map
+}
+
+// internSkill returns the interned copy of name.
+func (r *Replay) internSkill(name string) string {
+	if v, ok := r.skillNames.Load(name); ok {
+		return v.(string)
+	}
+	name = strings.Clone(name) // name may be part of a chunk of the file
+	v, _ := r.skillNames.LoadOrStore(name, name)
+	return v.(string)
+}
+
+// skillInterner is one decoding goroutine's cache of internSkill, by
+// skillHash: most lines name one of a few skills.
+type skillInterner struct {
+	r     *Replay
+	cache [64]struct {
+		hash uint64
+		name string
+	}
+}
+
+func (in *skillInterner) intern(name string, h uint64) string {
+	e := &in.cache[h%uint64(len(in.cache))]
+	if e.hash != h || e.name != name {
+		e.hash, e.name = h, in.r.internSkill(name)
+	}
+	return e.name
 }
 
 // NewReplay checks opt and returns a replay.
@@ -268,6 +306,7 @@ func (r *Replay) RunFile(ctx context.Context, path string) (*ReplayResult, error
 				return nil, err
 			}
 		}
+		out.startSync()
 		res, err := rp.finish()
 		if err != nil {
 			return nil, err
@@ -307,7 +346,7 @@ func (r *Replay) RunSource(ctx context.Context, src Source) (*ReplayResult, erro
 		if rp.records%4096 == 0 {
 			r.answers.Store(rp.answers)
 		}
-		return rp.apply(&d, rp.prefix[:0])
+		return rp.apply(&d)
 	})
 	if err != nil {
 		return nil, fmt.Errorf("attain: replaying %s: %w", src.Name(), err)
@@ -315,6 +354,7 @@ func (r *Replay) RunSource(ctx context.Context, src Source) (*ReplayResult, erro
 	if err := rp.drainStash(ctx); err != nil {
 		return nil, err
 	}
+	out.startSync()
 	res, err := rp.finish()
 	if err != nil {
 		return nil, err
@@ -362,6 +402,11 @@ type replayOutputs struct {
 	dir          string
 	pred, events *os.File
 	pw, ew       *rowWriter
+
+	// synced is closed when both files are flushed and synced to disk
+	// (startSync), with the error of each in syncErr.
+	synced  chan struct{}
+	syncErr [2]error
 }
 
 func (r *Replay) openOutputs() (*replayOutputs, error) {
@@ -381,6 +426,7 @@ func (r *Replay) openOutputs() (*replayOutputs, error) {
 		return nil, fmt.Errorf("attain: replay output: %w", err)
 	}
 	o.pw, o.ew = newRowWriter(o.pred), newRowWriter(o.events)
+	o.pw.f, o.ew.f = o.pred, o.events
 	return o, o.writeHeaders()
 }
 
@@ -417,23 +463,53 @@ func (o *replayOutputs) reset() error {
 	return o.writeHeaders()
 }
 
+// startSync flushes both files and syncs them to disk in the background.
+// Called once the rows are all written, it lets the disk work while the
+// report is computed: syncing tens of MiB costs about as much time as
+// the report.
+func (o *replayOutputs) startSync() {
+	if o.pred == nil || o.synced != nil {
+		return
+	}
+	o.synced = make(chan struct{})
+	go func() {
+		defer close(o.synced)
+		var wg sync.WaitGroup
+		for k, x := range []struct {
+			f *os.File
+			w *rowWriter
+		}{{o.pred, o.pw}, {o.events, o.ew}} {
+			wg.Add(1)
+			go func() {
+				defer wg.Done()
+				err := x.w.flush()
+				if err == nil {
+					err = x.f.Chmod(0o644) // outputs for people to read, not secrets
+				}
+				if err == nil {
+					err = x.f.Sync()
+				}
+				o.syncErr[k] = err
+			}()
+		}
+		wg.Wait()
+	}()
+}
+
+// commit waits for startSync (starting it if need be) and renames the files
+// into place.
 func (o *replayOutputs) commit() error {
 	if o.pred == nil {
 		return nil
 	}
+	o.startSync()
+	<-o.synced
 	var errs []error
-	for _, x := range []struct {
+	for k, x := range []struct {
 		f    *os.File
-		w    *rowWriter
 		name string
-	}{{o.pred, o.pw, "predictions.csv"}, {o.events, o.ew, "events.csv"}} {
-		err := x.w.flush()
-		if err == nil {
-			err = x.f.Chmod(0o644) // outputs for people to read, not secrets
-		}
-		if err == nil {
-			err = x.f.Sync()
-		}
+	}{{o.pred, "predictions.csv"}, {o.events, "events.csv"}} {
+		err := o.syncErr[k]
 		if cerr := x.f.Close(); err == nil {
 			err = cerr
 		}
@@ -450,6 +526,9 @@ func (o *replayOutputs) commit() error {
 }
 
 func (o *replayOutputs) abort() {
+	if o.synced != nil && o.pred != nil {
+		<-o.synced // no file is closed under a sync in progress
+	}
 	for _, f := range []*os.File{o.pred, o.events} {
 		if f != nil {
 			f.Close()
@@ -465,6 +544,12 @@ type rowWriter struct {
 	w   io.Writer
 	buf []byte
 	err error
+
+	// f, when set, is w: every rowWriterSize written, its pages are handed
+	// to the disk (startWriteback), so that the fsync of commit has little
+	// left to wait for.
+	f           *os.File
+	off, synced int64
 }
 
 const rowWriterSize = 1 << 20
@@ -482,13 +567,47 @@ func (b *rowWriter) maybeFlush() error {
 
 func (b *rowWriter) flush() error {
 	if b.err == nil && len(b.buf) > 0 {
-		_, b.err = b.w.Write(b.buf)
+		b.writeOut(b.buf)
 	}
 	b.buf = b.buf[:0]
 	return b.err
 }
 
-func (b *rowWriter) reset() { b.buf, b.err = b.buf[:0], nil }
+func (b *rowWriter) writeOut(p []byte) {
+	var n int
+	n, b.err = b.w.Write(p)
+	b.off += int64(n)
+	if b.f != nil && b.off-b.synced >= rowWriterSize {
+		startWriteback(b.f, b.synced, b.off-b.synced)
+		b.synced = b.off
+	}
+}
+
+func (b *rowWriter) reset() { b.buf, b.err, b.off, b.synced = b.buf[:0], nil, 0, 0 }
+
+// write appends p, or writes it straight through when it would not fit.
+func (b *rowWriter) write(p []byte) error {
+	if len(b.buf)+len(p) <= cap(b.buf) {
+		b.buf = append(b.buf, p...)
+		return b.maybeFlush()
+	}
+	if err := b.flush(); err != nil {
+		return err
+	}
+	b.writeOut(p)
+	return b.err
+}
+
+// writeChunk writes the rows of a chunk of the file pass.
+func (o *replayOutputs) writeChunk(c *replayChunk) error {
+	if err := o.pw.write(c.pred); err != nil {
+		return fmt.Errorf("attain: writing predictions.csv: %w", err)
+	}
+	if err := o.ew.write(c.ev); err != nil {
+		return fmt.Errorf("attain: writing events.csv: %w", err)
+	}
+	return nil
+}
 
 // ---- the replay state ----
 
@@ -504,6 +623,7 @@ type replayer struct {
 	window  int
 
 	learnerIdx map[string]int32
+	learnerTab []int32 // open addressing by learner hash: index+1, 0 = empty
 	learners   []replayLearner
 	skillIdx   map[string]int32
 	skills     []replaySkill
@@ -522,8 +642,18 @@ type replayer struct {
 
 	stash []stashedAnswer
 
+	// sink, when set, receives the rows of the answers applied instead of
+	// predictions.csv: the file pass formats them on the decoding
+	// goroutines (formatRows) and writes them from a writer goroutine, so
+	// that the applier, the one stage that cannot run in parallel, only
+	// computes. sinkAns is the index in sink.answers of the answer being
+	// applied.
+	sink    *replayChunk
+	sinkAns int32
+
 	// scratch, reused for every answer
 	prefix   []byte
+	atText   []byte
 	sk       []int32
 	preds    []float64 // per model × skill
 	combined float64   // the answer's prediction under the first set (Combine)
@@ -533,7 +663,10 @@ type replayer struct {
 
 type replayLearner struct {
 	name   string
-	ids    []uint64 // applied-id window, oldest first (hashes, as the store)
+	hash   uint64 // learnerHash(name)
+	key    learnerKey
+	ids    []uint64 // applied-id window (hashes, as the store), a ring
+	idNext int32    // where the next id goes once the window is full
 	lastAt int64    // latest `at` applied
 	hasAt  bool
 	seenAt int64 // latest `at` of any valid answer in source order
@@ -544,6 +677,7 @@ type replayLearner struct {
 type learnerSkillLink struct {
 	skill int32
 	ls    int32
+	hash  uint64 // skillHash of the skill's name
 }
 
 type learnerSkillRef struct {
@@ -553,6 +687,7 @@ type learnerSkillRef struct {
 
 type replaySkill struct {
 	name     string
+	hash     uint64         // skillHash(name)
 	params   []state.Params // per model
 	versions []int64        // per model
 	single   []int32        // []int32{index}, shared by one-skill answers
@@ -590,8 +725,11 @@ type replayAnswer struct {
 	a      state.Answer
 	hash   uint64 // idHash of a.ID
 	at     int64
-	pfx    [2]int32 // the row's first columns in the chunk's arena
-	skills []string // a.Skills without repeats, in first-occurrence order
+	lhash  uint64     // learnerHash of a.Learner
+	lkey   learnerKey // of a.Learner
+	shash  uint64     // skillHash of a one-skill answer's skill
+	atText string     // a.At as appendUTC writes it, when the line had it so; else ""
+	skills []string   // a.Skills without repeats, in first-occurrence order
 }
 
 // stashedAnswer is one answer held for the sorted pass.
@@ -672,8 +810,15 @@ func (rp *replayer) prepare(d *replayAnswer) bool {
 
 // prepareDecoded fills the worker-side fields of d.
 func prepareDecoded(d *replayAnswer) {
-	d.at = d.a.At.UnixNano()
+	d.at, d.atText = d.a.At.UnixNano(), ""
+	prepareFields(d)
+}
+
+// prepareFields fills the worker-side fields of d but its time.
+func prepareFields(d *replayAnswer) {
 	d.hash = idHash(d.a.ID)
+	d.lhash = learnerHash(d.a.Learner)
+	d.lkey = keyOf(d.a.Learner)
 	d.skills = d.a.Skills
 	for i := 1; i < len(d.skills); i++ {
 		if slices.Contains(d.skills[:i], d.skills[i]) {
@@ -688,6 +833,9 @@ func prepareDecoded(d *replayAnswer) {
 			d.skills = u
 			break
 		}
+	}
+	if len(d.skills) == 1 {
+		d.shash = skillHash(d.skills[0])
 	}
 }
 
@@ -731,7 +879,11 @@ func appendRowPrefix(b []byte, d *replayAnswer) []byte {
 		}
 	}
 	b = append(b, ',')
-	b = appendUTC(b, d.at)
+	if d.atText != "" {
+		b = append(b, d.atText...)
+	} else {
+		b = appendUTC(b, d.at)
+	}
 	return append(b, ',')
 }
 
@@ -819,7 +971,24 @@ func needsQuotesString(s string) bool {
 	if s[0] == ' ' {
 		return true
 	}
-	for i := 0; i < len(s); i++ {
+	// Eight bytes at a time (every row has three or more fields to check):
+	// (x−0x01…)&^x&0x80… is non-zero exactly when x has a zero byte, that
+	// is when w has a byte equal to the one x was made with.
+	const ones, highs = 0x0101010101010101, 0x8080808080808080
+	has := func(w uint64, c byte) uint64 {
+		x := w ^ (uint64(c) * ones)
+		return (x - ones) &^ x
+	}
+	i := 0
+	for ; i+8 <= len(s); i += 8 {
+		t := s[i : i+8]
+		w := uint64(t[0]) | uint64(t[1])<<8 | uint64(t[2])<<16 | uint64(t[3])<<24 |
+			uint64(t[4])<<32 | uint64(t[5])<<40 | uint64(t[6])<<48 | uint64(t[7])<<56
+		if (has(w, ',')|has(w, '"')|has(w, '\r')|has(w, '\n'))&highs != 0 {
+			return true
+		}
+	}
+	for ; i < len(s); i++ {
 		switch s[i] {
 		case ',', '"', '\r', '\n':
 			return true
@@ -835,14 +1004,68 @@ func needsQuotes(b []byte) bool {
 	return b[0] == ' ' || bytes.ContainsAny(b, ",\"\r\n")
 }
 
-// learner returns the index of the named learner, adding it when new.
-func (rp *replayer) learner(name string) int32 {
-	if i, ok := rp.learnerIdx[name]; ok {
-		return i
+// learnerSeed seeds learnerHash: one per process, since the hashes only
+// find learners in the replayer's table and never reach an output.
+var learnerSeed = maphash.MakeSeed()
+
+// learnerHash is the hash of a learner id by which the applier finds the
+// learner; the decoding goroutines compute it, so that the applier's look-up
+// is a probe and one comparison of the id.
+func learnerHash(name string) uint64 { return maphash.String(learnerSeed, name) }
+
+// learnerKey is the length and first 16 bytes of a learner's id: with the
+// hash, it tells two ids apart without reading either's bytes (most ids
+// are that short), which spares the applier a cache miss an answer.
+type learnerKey struct {
+	n    int
+	head [2]uint64
+}
+
+func keyOf(name string) learnerKey {
+	k := learnerKey{n: len(name)}
+	for i := 0; i < len(name) && i < 16; i++ {
+		k.head[i/8] |= uint64(name[i]) << (8 * (i % 8))
+	}
+	return k
+}
+
+// learner returns the index of the learner named name, whose learnerHash is
+// h and keyOf k, adding it when new.
+func (rp *replayer) learner(name string, h uint64, k learnerKey) int32 {
+	if len(rp.learnerTab) == 0 {
+		rp.learnerTab = make([]int32, 1024)
+	}
+	mask := uint64(len(rp.learnerTab) - 1)
+	slot := h & mask
+	for ; ; slot = (slot + 1) & mask {
+		e := rp.learnerTab[slot]
+		if e == 0 {
+			break
+		}
+		if l := &rp.learners[e-1]; l.hash == h && l.key == k && (k.n <= 16 || l.name[16:] == name[16:]) {
+			return e - 1
+		}
 	}
 	i := int32(len(rp.learners))
+	// A copy: name may be part of a chunk of the file, which the learner
+	// must not keep alive.
+	name = strings.Clone(name)
 	rp.learnerIdx[name] = i
-	rp.learners = append(rp.learners, replayLearner{name: name})
+	rp.learners = append(rp.learners, replayLearner{name: name, hash: h, key: k})
+	if 2*len(rp.learners) <= len(rp.learnerTab) {
+		rp.learnerTab[slot] = i + 1
+		return i
+	}
+	// Over half full: double the table and place every learner again.
+	rp.learnerTab = make([]int32, 2*len(rp.learnerTab))
+	mask = uint64(len(rp.learnerTab) - 1)
+	for j := range rp.learners {
+		s := rp.learners[j].hash & mask
+		for rp.learnerTab[s] != 0 {
+			s = (s + 1) & mask
+		}
+		rp.learnerTab[s] = int32(j) + 1
+	}
 	return i
 }
 
@@ -852,8 +1075,9 @@ func (rp *replayer) skill(name string) int32 {
 		return i
 	}
 	i := int32(len(rp.skills))
+	name = rp.r.internSkill(name) // a copy, as for a learner's id, and the one the decoders hand out
 	rp.skillIdx[name] = i
-	si := replaySkill{name: name, single: []int32{i}}
+	si := replaySkill{name: name, hash: skillHash(name), single: []int32{i}}
 	for _, np := range rp.r.opt.Params {
 		p, v := np.File.For(name)
 		si.params = append(si.params, p)
@@ -871,31 +1095,33 @@ func (rp *replayer) skill(name string) int32 {
 // skill; rp.sk, reused, for several).
 func (rp *replayer) skillsOf(li int32, d *replayAnswer) []int32 {
 	if len(d.skills) == 1 {
-		return rp.skills[rp.skillOf(li, d.skills[0])].single
+		return rp.skills[rp.skillOf(li, d.skills[0], d.shash)].single
 	}
 	rp.sk = rp.sk[:0]
 	for _, s := range d.skills {
-		rp.sk = append(rp.sk, rp.skillOf(li, s))
+		rp.sk = append(rp.sk, rp.skillOf(li, s, skillHash(s)))
 	}
 	return rp.sk
 }
 
 // skillOf is skill(name), looked up first among the few skills learner li
-// has answered (comparing names is cheaper than hashing one).
-func (rp *replayer) skillOf(li int32, name string) int32 {
+// has answered, by the hash h of name (skillHash) and then the name.
+func (rp *replayer) skillOf(li int32, name string, h uint64) int32 {
 	for _, ref := range rp.learners[li].skills {
-		if rp.skills[ref.skill].name == name {
+		if ref.hash == h && rp.skills[ref.skill].name == name {
 			return ref.skill
 		}
 	}
 	return rp.skill(name)
 }
 
+// skillHash is the hash of a skill's name by which skillOf finds it.
+func skillHash(name string) uint64 { return maphash.String(learnerSeed, name) }
+
 // apply handles one prepared answer in source order: the order check, then
-// (unless sorting) the answer itself. pfx holds its row prefix, or is empty
-// to have it rendered here.
-func (rp *replayer) apply(d *replayAnswer, pfx []byte) error {
-	li := rp.learner(d.a.Learner)
+// (unless sorting) the answer itself.
+func (rp *replayer) apply(d *replayAnswer) error {
+	li := rp.learner(d.a.Learner, d.lhash, d.lkey)
 	l := &rp.learners[li]
 	if l.seen && d.at < l.seenAt {
 		if rp.order == OrderAt && !rp.sorted {
@@ -908,14 +1134,16 @@ func (rp *replayer) apply(d *replayAnswer, pfx []byte) error {
 	}
 	sk := rp.skillsOf(li, d)
 	if rp.sorted {
-		st := stashedAnswer{id: d.a.ID, at: d.at, hash: d.hash, learner: li, correct: d.a.Correct, skills: sk}
+		// The id is copied for the reason the learner's is.
+		st := stashedAnswer{id: strings.Clone(d.a.ID), at: d.at, hash: d.hash, learner: li, correct: d.a.Correct, skills: sk}
 		if len(sk) > 1 {
 			st.skills = slices.Clone(sk)
 		}
 		rp.stash = append(rp.stash, st)
 		return nil
 	}
-	if len(pfx) == 0 && rp.out.pw != nil {
+	var pfx []byte
+	if rp.sink == nil && rp.out.pw != nil {
 		rp.prefix = appendRowPrefix(rp.prefix[:0], d)
 		pfx = rp.prefix
 	}
@@ -1054,13 +1282,18 @@ func (rp *replayer) step(li int32, sk []int32, id string, hash uint64, at int64,
 	if l.hasAt && at < l.lastAt {
 		rp.late++
 	}
-	// The window, exactly as the store keeps it (state/encoding.go,
-	// window.add): the last DedupeWindow applied ids, oldest first.
-	if len(l.ids) >= rp.window {
-		n := copy(l.ids, l.ids[len(l.ids)-rp.window+1:])
-		l.ids = l.ids[:n]
+	// The window holds the same ids as the store's (state/encoding.go,
+	// window.add: the last DedupeWindow applied ids), as a ring: only
+	// membership is asked of it here, and a ring takes the next id without
+	// moving the others.
+	if len(l.ids) < rp.window {
+		l.ids = append(l.ids, hash)
+	} else {
+		l.ids[l.idNext] = hash
+		if l.idNext++; int(l.idNext) == len(l.ids) {
+			l.idNext = 0
+		}
 	}
-	l.ids = append(l.ids, hash)
 	if !l.hasAt || at > l.lastAt {
 		l.lastAt, l.hasAt = at, true
 	}
@@ -1120,6 +1353,7 @@ func (rp *replayer) step(li int32, sk []int32, id string, hash uint64, at int64,
 					}
 				}
 			}
+			reserveScores(&acc.skills[s])
 			acc.skills[s].Add(pc, correct)
 			rp.preds = append(rp.preds, pc)
 			if int(opp) < rp.r.opt.CurveOpportunities {
@@ -1136,17 +1370,119 @@ func (rp *replayer) step(li int32, sk []int32, id string, hash uint64, at int64,
 			}
 		}
 		pc := Combine(rp.preds[start:])
+		reserveScores(&acc.overall)
 		acc.overall.Add(pc, correct)
 		if m == 0 {
 			rp.combined = pc
 		}
 	}
 	if rp.out.pw != nil {
+		if rp.sink != nil {
+			rp.sinkRow(sk, li)
+			return nil
+		}
 		if err := rp.writeRow(li, sk, id, at, correct, pfx); err != nil {
 			return err
 		}
 	}
 	return nil
+}
+
+// sinkRow keeps what the answer's predictions.csv row and events.csv rows
+// need beyond the answer itself; formatRows writes them as writeRow would.
+func (rp *replayer) sinkRow(sk []int32, li int32) {
+	c := rp.sink
+	if len(c.rows) == cap(c.rows) {
+		c.rows = slices.Grow(c.rows, len(c.answers)-len(c.rows))
+	}
+	nm, np := rp.nModels, rp.nPol
+	row := replayRow{ans: rp.sinkAns, combined: rp.combined, multi: -1}
+	v0 := rp.skills[sk[0]].versions[0]
+	if len(sk) == 1 {
+		row.mastery, row.version = rp.tracks[int(rp.lsOf[0])*nm*np].rec.Mastery, v0
+	} else {
+		row.multi, row.version = int32(len(c.multi)), v0
+		row.sameVersion = true
+		for k, s := range sk {
+			v := rp.skills[s].versions[0]
+			c.multi = append(c.multi, replayRowSkill{rp.tracks[int(rp.lsOf[k])*nm*np].rec.Mastery, v})
+			row.sameVersion = row.sameVersion && v == v0
+		}
+	}
+	c.rows = append(c.rows, row)
+	for _, ev := range rp.events {
+		c.events = append(c.events, sinkEvent{rp.sinkAns, ev.kind, rp.learners[li].name, rp.skills[ev.skill].name, ev.rec})
+	}
+}
+
+// formatRows renders the chunk's predictions.csv and events.csv rows, byte
+// for byte as writeRow does; it runs on a decoding goroutine.
+func formatRows(c *replayChunk) {
+	// A row is shorter than its line: one growth at most.
+	b := slices.Grow(c.pred[:0], len(c.data))
+	for i := range c.rows {
+		row := &c.rows[i]
+		d := &c.answers[row.ans]
+		b = appendRowPrefix(b, d)
+		b = strconv.AppendFloat(b, row.combined, 'g', -1, 64)
+		if d.a.Correct {
+			b = append(b, ",1,"...)
+		} else {
+			b = append(b, ",0,"...)
+		}
+		if row.multi < 0 {
+			b = strconv.AppendFloat(b, row.mastery, 'g', -1, 64)
+			b = append(b, ',')
+			b = strconv.AppendInt(b, row.version, 10)
+		} else {
+			sks := c.multi[row.multi : int(row.multi)+len(d.skills)]
+			for k, s := range d.skills {
+				if k > 0 {
+					b = append(b, ';')
+				}
+				b = append(b, s...)
+				b = append(b, '=')
+				b = strconv.AppendFloat(b, sks[k].mastery, 'g', -1, 64)
+			}
+			b = append(b, ',')
+			if row.sameVersion {
+				b = strconv.AppendInt(b, row.version, 10)
+			} else {
+				for k, s := range d.skills {
+					if k > 0 {
+						b = append(b, ';')
+					}
+					b = append(b, s...)
+					b = append(b, '=')
+					b = strconv.AppendInt(b, sks[k].version, 10)
+				}
+			}
+		}
+		b = append(b, '\n')
+	}
+	c.pred = b
+	e := c.ev[:0]
+	var atText []byte
+	for i := range c.events {
+		ev := &c.events[i]
+		d := &c.answers[ev.ans]
+		atText = appendUTC(atText[:0], d.at)
+		e = appendEvent(e, ev.learner, ev.skill, d.a.ID, atText, ev.kind, &ev.rec)
+	}
+	c.ev = e
+}
+
+// reserveScores makes room in s for the next pair by doubling: append grows
+// a long slice by a quarter at a time, which over a file of millions of
+// answers allocates five times the final size and copies four times over,
+// all on the applier.
+func reserveScores(s *Scores) {
+	if len(s.p) == cap(s.p) {
+		s.p = slices.Grow(s.p, max(len(s.p), 1024))
+	}
+	if len(s.y) == cap(s.y) {
+		s.y = slices.Grow(s.y, max(len(s.y), 1024))
+	}
 }
 
 // learnerSkill returns the learner-skill index of (li, s), adding it (with
@@ -1160,8 +1496,11 @@ func (rp *replayer) learnerSkill(li, s int32) int32 {
 	}
 	ls := int32(len(rp.lskills))
 	rp.lskills = append(rp.lskills, learnerSkillRef{learner: li, skill: s})
-	l.skills = append(l.skills, learnerSkillLink{skill: s, ls: ls})
+	l.skills = append(l.skills, learnerSkillLink{skill: s, ls: ls, hash: rp.skills[s].hash})
 	si := &rp.skills[s]
+	if n := rp.nModels * rp.nPol; len(rp.tracks)+n > cap(rp.tracks) {
+		rp.tracks = slices.Grow(rp.tracks, max(len(rp.tracks), 4096)) // doubling, as reserveScores
+	}
 	for m := 0; m < rp.nModels; m++ {
 		rec := state.NewRecord(si.params[m], si.versions[m])
 		for range rp.nPol {
@@ -1213,7 +1552,7 @@ func (rp *replayer) writeRow(li int32, sk []int32, id string, at int64, correct 
 	}
 	w.buf = append(b, '\n')
 	if len(rp.events) > 0 {
-		rp.writeEvents(li, id, at)
+		rp.out.ew.buf = rp.appendEvents(rp.out.ew.buf, li, id, at)
 	}
 	if err := w.maybeFlush(); err != nil {
 		return fmt.Errorf("attain: writing predictions.csv: %w", err)
@@ -1224,48 +1563,107 @@ func (rp *replayer) writeRow(li int32, sk []int32, id string, at int64, correct 
 	return nil
 }
 
-func (rp *replayer) writeEvents(li int32, id string, at int64) {
-	w := rp.out.ew
+// appendEvents appends the answer's events.csv rows to b.
+func (rp *replayer) appendEvents(b []byte, li int32, id string, at int64) []byte {
 	learner := rp.learners[li].name
-	atText := time.Unix(0, at).UTC().Format(time.RFC3339Nano)
+	atText := appendUTC(rp.atText[:0], at)
+	rp.atText = atText
 	for _, ev := range rp.events {
-		skill := rp.skills[ev.skill].name
-		b := append(w.buf, state.EventID(learner, skill, ev.kind, ev.rec.Opportunities)...)
-		b = append(b, ',')
-		b = append(b, ev.kind.EventType()...)
-		b = append(b, ',')
-		b = appendCSVField(b, learner)
-		b = append(b, ',')
-		b = appendCSVField(b, skill)
-		b = append(b, ',')
-		b = strconv.AppendUint(b, uint64(ev.rec.Opportunities), 10)
-		b = append(b, ',')
-		b = strconv.AppendFloat(b, ev.rec.Mastery, 'g', -1, 64)
-		b = append(b, ',')
-		b = strconv.AppendInt(b, ev.rec.ParamsVersion, 10)
-		b = append(b, ',')
-		b = appendCSVField(b, id)
-		b = append(b, ',')
-		b = append(b, atText...)
-		w.buf = append(b, '\n')
+		b = appendEvent(b, learner, rp.skills[ev.skill].name, id, atText, ev.kind, &ev.rec)
 	}
+	return b
+}
+
+// appendEvent appends one events.csv row; atText is the answer's time as
+// time.RFC3339Nano writes it in UTC (appendUTC).
+func appendEvent(b []byte, learner, skill, id string, atText []byte, kind state.Kind, rec *state.Record) []byte {
+	b = append(b, state.EventID(learner, skill, kind, rec.Opportunities)...)
+	b = append(b, ',')
+	b = append(b, kind.EventType()...)
+	b = append(b, ',')
+	b = appendCSVField(b, learner)
+	b = append(b, ',')
+	b = appendCSVField(b, skill)
+	b = append(b, ',')
+	b = strconv.AppendUint(b, uint64(rec.Opportunities), 10)
+	b = append(b, ',')
+	b = strconv.AppendFloat(b, rec.Mastery, 'g', -1, 64)
+	b = append(b, ',')
+	b = strconv.AppendInt(b, rec.ParamsVersion, 10)
+	b = append(b, ',')
+	b = appendCSVField(b, id)
+	b = append(b, ',')
+	b = append(b, atText...)
+	return append(b, '\n')
+}
+
+// sinkEvent is an event of the file pass, kept for formatRows: the names
+// are the replayer's own (immutable) strings, so that a worker can read
+// them while the applier goes on.
+type sinkEvent struct {
+	ans            int32 // index in the chunk's answers
+	kind           state.Kind
+	learner, skill string
+	rec            state.Record
 }
 
 // ---- reading a file in parallel ----
 
-// replayChunkSize is how much of a file one decoding job holds (our choice: big
-// enough that the hand-offs cost nothing per answer, small enough that the
-// pipeline's buffers stay a few MiB).
-const replayChunkSize = 256 << 10
+// replayChunkSize is how much of a file one decoding job holds (our choice:
+// big enough that the hand-offs cost nothing per answer — some 400 lines a
+// chunk — and small enough that a chunk's answers are still in the caches
+// when the next stage takes them; 64 KiB measured a little faster than
+// 256 KiB on the 2-core development machine, 32 KiB no faster).
+const replayChunkSize = 64 << 10
 
+// replayChunk is one piece of the file on its way through the pipeline of
+// filePass: read, decoded, applied, its rows formatted, written.
 type replayChunk struct {
-	data    []byte // whole lines (the last one may lack its newline at EOF)
+	// data holds whole lines (the last one may lack its newline at EOF).
+	// The answers' strings point into it (decodeChunk): nothing may keep
+	// one after the chunk returns to the pool.
+	data    []byte
 	answers []replayAnswer
+	skills  []string // the skill lists of the answers the fast path read
 	rejects []replayChunkReject
-	arena   []byte // row prefixes of the answers
 	lines   int
 	blank   int
-	done    chan struct{}
+	done    chan struct{} // decoded
+
+	// Filled by the applier (sinkRow), then rendered into pred by a
+	// decoding goroutine (formatRows), then written.
+	rows      []replayRow
+	multi     []replayRowSkill
+	events    []sinkEvent
+	ev        []byte // events.csv rows of the chunk
+	pred      []byte // predictions.csv rows of the chunk
+	formatted chan struct{}
+}
+
+func newReplayChunk() *replayChunk {
+	return &replayChunk{data: make([]byte, 0, replayChunkSize+4096), done: make(chan struct{}, 1), formatted: make(chan struct{}, 1)}
+}
+
+// reset empties c for the next piece of the file.
+func (c *replayChunk) reset() {
+	c.answers, c.skills, c.rejects = c.answers[:0], c.skills[:0], c.rejects[:0]
+	c.rows, c.multi, c.events, c.ev, c.pred = c.rows[:0], c.multi[:0], c.events[:0], c.ev[:0], c.pred[:0]
+}
+
+// replayRow is what a predictions.csv row holds beyond the answer: the
+// numbers the applier computed for it.
+type replayRow struct {
+	ans         int32 // index in the chunk's answers
+	multi       int32 // first of the answer's skills in the chunk's multi; -1: one skill
+	combined    float64
+	mastery     float64 // one skill
+	version     int64   // one skill, or the version every skill has (sameVersion)
+	sameVersion bool
+}
+
+type replayRowSkill struct {
+	mastery float64
+	version int64
 }
 
 type replayChunkReject struct {
@@ -1274,8 +1672,13 @@ type replayChunkReject struct {
 	err   error
 }
 
-// filePass reads path with one reader goroutine and Workers decoding
-// goroutines, and applies the decoded answers here, in file order.
+// filePass reads path through a pipeline: one reader goroutine cuts the
+// file into chunks of whole lines; Workers goroutines decode them; this
+// goroutine applies the answers in file order (the only stage that must be
+// sequential, so it does nothing else); the same workers render the rows
+// of applied chunks; a writer goroutine writes them in order. Chunks come
+// back to a fixed pool, so the buffers stay bounded whatever the file's
+// size, and every stage runs while the others do.
 func (r *Replay) filePass(ctx context.Context, path string, rp *replayer) (err error) {
 	var in io.Reader = os.Stdin
 	if path != "-" {
@@ -1291,20 +1694,39 @@ func (r *Replay) filePass(ctx context.Context, path string, rp *replayer) (err e
 	}
 	ctx, cancel := context.WithCancel(ctx)
 	workers := r.opt.Workers
-	pool := 2*workers + 2
+	// Rows are rendered off the applier when the pass writes them as it
+	// goes; a sorted pass writes them when it drains the stash.
+	rows := rp.out.pw != nil && !rp.sorted
+	// Enough chunks that the reader and the decoders can run ahead of the
+	// applier by a chunk per worker while others are formatted and written.
+	pool := 4*workers + 4
 	free := make(chan *replayChunk, pool)
 	for range pool {
-		free <- &replayChunk{data: make([]byte, 0, replayChunkSize+4096), done: make(chan struct{}, 1)}
+		free <- newReplayChunk()
 	}
+	// Every channel holds the whole pool: no send blocks.
 	work := make(chan *replayChunk, pool)
 	order := make(chan *replayChunk, pool)
-	var readErr error
+	toFormat := make(chan *replayChunk, pool)
+	toWrite := make(chan *replayChunk, pool)
+	closeOut := sync.OnceFunc(func() {
+		close(toFormat)
+		close(toWrite)
+	})
+	var readErr, writeErr error
 	var wg sync.WaitGroup
-	// Stop order: cancel, then wait for the reader (which closes work and
-	// order) and the workers (which end when work is closed).
+	// Stop order: cancel, close the applier's outputs, then wait for the
+	// reader (which closes work and order), the workers (which end when
+	// work and toFormat are closed) and the writer. A write error is the
+	// pass's error, whatever stopped the others.
 	defer func() {
 		cancel()
+		closeOut()
 		wg.Wait()
+		rp.sink = nil
+		if writeErr != nil {
+			err = writeErr
+		}
 	}()
 	wg.Add(1)
 	go func() {
@@ -1318,12 +1740,60 @@ func (r *Replay) filePass(ctx context.Context, path string, rp *replayer) (err e
 		go func() {
 			defer wg.Done()
 			dec := r.opt.Decoder
-			for c := range work {
-				decodeChunk(&dec, c, rp.out.pw != nil && !rp.sorted)
-				c.done <- struct{}{}
+			in := &skillInterner{r: r}
+			work, toFormat := work, toFormat
+			for work != nil || toFormat != nil {
+				// Rendering first: it is what the writer, and through the
+				// pool the reader, wait for.
+				select {
+				case c, ok := <-toFormat:
+					if !ok {
+						toFormat = nil
+						continue
+					}
+					formatRows(c)
+					c.formatted <- struct{}{}
+					continue
+				default:
+				}
+				select {
+				case c, ok := <-toFormat:
+					if !ok {
+						toFormat = nil
+						continue
+					}
+					formatRows(c)
+					c.formatted <- struct{}{}
+				case c, ok := <-work:
+					if !ok {
+						work = nil
+						continue
+					}
+					decodeChunk(&dec, in, c)
+					c.done <- struct{}{}
+				case <-ctx.Done():
+					return
+				}
 			}
 		}()
 	}
+	wg.Add(1)
+	go func() {
+		defer wg.Done()
+		for c := range toWrite {
+			select {
+			case <-c.formatted:
+			case <-ctx.Done():
+				return
+			}
+			if writeErr = rp.out.writeChunk(c); writeErr != nil {
+				cancel()
+				return
+			}
+			c.reset()
+			free <- c
+		}
+	}()
 	line := 0
 	for c := range order {
 		select {
@@ -1331,16 +1801,17 @@ func (r *Replay) filePass(ctx context.Context, path string, rp *replayer) (err e
 		case <-ctx.Done():
 			return ctx.Err()
 		}
+		if rows {
+			rp.sink = c
+		}
 		for i := range c.answers {
 			d := &c.answers[i]
-			var pfx []byte
-			if rp.out.pw != nil {
-				pfx = c.arena[d.pfx[0]:d.pfx[1]]
-			}
-			if err := rp.apply(d, pfx); err != nil {
+			rp.sinkAns = int32(i)
+			if err := rp.apply(d); err != nil {
 				return err
 			}
 		}
+		rp.sink = nil
 		for _, rj := range c.rejects {
 			le := &LineError{Line: line + rj.line + 1, Reason: rj.err.Error(), Err: rj.err}
 			var ae *state.AnswerError
@@ -1355,13 +1826,22 @@ func (r *Replay) filePass(ctx context.Context, path string, rp *replayer) (err e
 		r.records.Add(int64(c.lines))
 		r.bytes.Add(int64(len(c.data)))
 		r.answers.Store(rp.answers)
-		c.answers = c.answers[:0]
-		c.rejects = c.rejects[:0]
-		c.arena = c.arena[:0]
-		free <- c
+		if rows {
+			toFormat <- c
+			toWrite <- c
+		} else {
+			c.reset()
+			free <- c
+		}
 		if err := ctx.Err(); err != nil {
 			return err
 		}
+	}
+	// Every chunk is applied: let the workers and the writer finish.
+	closeOut()
+	wg.Wait()
+	if writeErr != nil {
+		return writeErr
 	}
 	if readErr != nil {
 		return readErr
@@ -1421,21 +1901,58 @@ func readChunks(ctx context.Context, in io.Reader, free chan *replayChunk, work,
 	return nil
 }
 
-// decodeChunk decodes every line of c.
-func decodeChunk(dec *state.NativeDecoder, c *replayChunk, rows bool) {
-	data := c.data
+// decodeChunk decodes every line of c: lines of the common shape by
+// fastDecoder, the others by dec. The answers' skill names are interned
+// (skillInterner).
+func decodeChunk(dec *state.NativeDecoder, in *skillInterner, c *replayChunk) {
+	// The answers' strings are substrings of the chunk's buffer itself, not
+	// of a copy: copying 256 KiB a chunk (and collecting the copies) cost
+	// more than a tenth of a second per million answers. This is safe
+	// because the buffer is written only by the reader, only once the chunk
+	// is back in the pool, when nothing refers to its answers any more;
+	// what the replay keeps beyond a chunk (learners' and skills' names,
+	// the sorted pass's ids) it copies: see learner, skill and apply.
+	var text string
+	if len(c.data) > 0 {
+		text = unsafe.String(&c.data[0], len(c.data))
+	}
+	var fd fastDecoder
 	c.lines, c.blank = 0, 0
-	for len(data) > 0 {
-		i := bytes.IndexByte(data, '\n')
-		var line []byte
-		if i < 0 {
-			line, data = data, nil
-		} else {
-			line, data = data[:i], data[i+1:]
+	for start := 0; start < len(text); {
+		end := len(text)
+		next := end
+		if i := strings.IndexByte(text[start:], '\n'); i >= 0 {
+			end = start + i
+			next = end + 1
 		}
 		n := c.lines
 		c.lines++
-		line = bytes.TrimSpace(line)
+		raw := c.data[start:end]
+		// Trim ASCII white space as bytes.TrimSpace does; a line that then
+		// begins or ends with a byte from 0x80 (perhaps Unicode white
+		// space) is the decoder's, trimmed by bytes.TrimSpace.
+		lo, hi := start, end
+		for lo < hi && asciiSpace(text[lo]) {
+			lo++
+		}
+		for hi > lo && asciiSpace(text[hi-1]) {
+			hi--
+		}
+		start = next
+		if lo == hi {
+			c.blank++
+			continue
+		}
+		if text[lo] < 0x80 && text[hi-1] < 0x80 && (dec.MaxBytes <= 0 || hi-lo <= dec.MaxBytes) {
+			n0 := len(c.skills)
+			if fa, ok := fd.decode(text[lo:hi], &c.skills); ok {
+				sk := c.skills[n0:len(c.skills):len(c.skills)] // capped: nothing appends through it
+				c.answers = append(c.answers, replayAnswer{a: state.Answer{ID: fa.id, Learner: fa.learner, Skills: sk, Correct: fa.correct}, at: fa.at, atText: fa.atText})
+				in.prepare(&c.answers[len(c.answers)-1])
+				continue
+			}
+		}
+		line := bytes.TrimSpace(raw)
 		if len(line) == 0 {
 			c.blank++
 			continue
@@ -1457,11 +1974,28 @@ func decodeChunk(dec *state.NativeDecoder, c *replayChunk, rows bool) {
 		}
 		c.answers = append(c.answers, replayAnswer{a: a})
 		d := &c.answers[len(c.answers)-1]
-		prepareDecoded(d)
-		if rows {
-			start := len(c.arena)
-			c.arena = appendRowPrefix(c.arena, d)
-			d.pfx = [2]int32{int32(start), int32(len(c.arena))}
-		}
+		d.at = a.At.UnixNano()
+		// Interned in a list of its own: the decoder's may be the item
+		// map's.
+		d.a.Skills = slices.Clone(d.a.Skills)
+		in.prepare(d)
 	}
+}
+
+// prepare is prepareFields, the skill names then interned (in place: the
+// list is the chunk's).
+func (in *skillInterner) prepare(d *replayAnswer) {
+	prepareFields(d)
+	if len(d.skills) == 1 {
+		d.skills[0] = in.intern(d.skills[0], d.shash)
+		return
+	}
+	for k, s := range d.skills {
+		d.skills[k] = in.intern(s, skillHash(s))
+	}
+}
+
+// asciiSpace is the ASCII white space of bytes.TrimSpace.
+func asciiSpace(c byte) bool {
+	return c == ' ' || c == '\t' || c == '\n' || c == '\r' || c == '\v' || c == '\f'
 }

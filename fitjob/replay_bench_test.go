@@ -111,7 +111,7 @@ func syntheticReplay(b *testing.B, learners, skills, opps int) *replayer {
 				at += int64(time.Second)
 				d.a = state.Answer{ID: fmt.Sprintf("%s-%d-%d", name, s, o), Learner: name, Skills: names[s : s+1], Correct: correct, At: time.Unix(0, at)}
 				prepareDecoded(&d)
-				if err := rp.apply(&d, nil); err != nil {
+				if err := rp.apply(&d); err != nil {
 					b.Fatal(err)
 				}
 			}
@@ -152,14 +152,20 @@ func BenchmarkReport10M(b *testing.B) {
 }
 
 // decodedCohort reads a cohort file into decoding chunks, decoded by the
-// workers' code (decodeChunk), for the two halves of BenchmarkReplayFile.
-func decodedCohort(b *testing.B, learners int) ([]*replayChunk, *state.ParamFile, int) {
+// workers' code (decodeChunk) for a replay of it under its true parameters,
+// for the parts of BenchmarkReplayFile.
+func decodedCohort(b *testing.B, learners int) ([]*replayChunk, *Replay, int) {
 	b.Helper()
 	path, truth := writeBenchCohort(b, learners)
 	data, err := os.ReadFile(path)
 	if err != nil {
 		b.Fatal(err)
 	}
+	r, err := NewReplay(ReplayOptions{Params: []NamedParams{{"truth", truth}}, Logger: zerolog.Nop()})
+	if err != nil {
+		b.Fatal(err)
+	}
+	in := &skillInterner{r: r}
 	var chunks []*replayChunk
 	n := 0
 	for len(data) > 0 {
@@ -172,27 +178,29 @@ func decodedCohort(b *testing.B, learners int) ([]*replayChunk, *state.ParamFile
 		c := &replayChunk{data: data[:cut]}
 		data = data[cut:]
 		var dec state.NativeDecoder
-		decodeChunk(&dec, c, true)
+		decodeChunk(&dec, in, c)
 		n += len(c.answers)
 		chunks = append(chunks, c)
 	}
-	return chunks, truth, n
+	return chunks, r, n
 }
 
 // BenchmarkReplayDecode is the decoding goroutines' work per answer
-// (state.NativeDecoder, the store's checks, the row's first columns), on
-// one goroutine: ns/op is per answer.
+// (decodeChunk: the fast path, or state.NativeDecoder for lines it leaves,
+// the store's checks, the hashes the applier looks learners and skills up
+// by), on one goroutine: ns/op is per answer.
 func BenchmarkReplayDecode(b *testing.B) {
-	chunks, _, _ := decodedCohort(b, 500)
+	chunks, r, _ := decodedCohort(b, 500)
 	var dec state.NativeDecoder
+	in := &skillInterner{r: r}
 	b.ResetTimer()
 	cpu0 := cpuTime()
 	defer func() { b.ReportMetric(float64(cpuTime()-cpu0)/float64(b.N), "cpu-ns/answer") }()
 	done := 0
 	for done < b.N {
 		for _, c := range chunks {
-			c.answers, c.rejects, c.arena = c.answers[:0], c.rejects[:0], c.arena[:0]
-			decodeChunk(&dec, c, true)
+			c.reset()
+			decodeChunk(&dec, in, c)
 			done += len(c.answers)
 			if done >= b.N {
 				break
@@ -201,15 +209,13 @@ func BenchmarkReplayDecode(b *testing.B) {
 	}
 }
 
-// BenchmarkReplayApply is the applying goroutine's work per answer (the
-// learner's window, Record.Apply, the scores and curves, the CSV row), on
-// answers decoded beforehand: ns/op is per answer.
+// BenchmarkReplayApply is the applying goroutine's work per answer as the
+// file pass does it (the learner's window, Record.Apply, the scores and
+// curves, the numbers of the CSV row and any events; the row itself is
+// rendered elsewhere, BenchmarkReplayFormat), on answers decoded
+// beforehand: ns/op is per answer.
 func BenchmarkReplayApply(b *testing.B) {
-	chunks, truth, _ := decodedCohort(b, 500)
-	r, err := NewReplay(ReplayOptions{Params: []NamedParams{{"truth", truth}}, Logger: zerolog.Nop()})
-	if err != nil {
-		b.Fatal(err)
-	}
+	chunks, r, _ := decodedCohort(b, 500)
 	out := &replayOutputs{pw: newRowWriter(io.Discard), ew: newRowWriter(io.Discard)}
 	b.ResetTimer()
 	cpu0 := cpuTime()
@@ -218,13 +224,49 @@ func BenchmarkReplayApply(b *testing.B) {
 	for done < b.N {
 		rp := newReplayer(r, out, "bench", false) // a fresh pass over the same answers
 		for _, c := range chunks {
+			c.rows, c.multi, c.events = c.rows[:0], c.multi[:0], c.events[:0]
+			rp.sink = c
 			for i := range c.answers {
 				d := &c.answers[i]
-				if err := rp.apply(d, c.arena[d.pfx[0]:d.pfx[1]]); err != nil {
+				rp.sinkAns = int32(i)
+				if err := rp.apply(d); err != nil {
 					b.Fatal(err)
 				}
 			}
+			rp.sink = nil
 			done += len(c.answers)
+			if done >= b.N {
+				break
+			}
+		}
+	}
+}
+
+// BenchmarkReplayFormat is the rendering of applied answers' predictions.csv
+// rows (formatRows, on the decoding goroutines in the file pass), on
+// answers decoded and applied beforehand: ns/op is per answer.
+func BenchmarkReplayFormat(b *testing.B) {
+	chunks, r, _ := decodedCohort(b, 500)
+	rp := newReplayer(r, &replayOutputs{pw: newRowWriter(io.Discard), ew: newRowWriter(io.Discard)}, "bench", false)
+	for _, c := range chunks {
+		rp.sink = c
+		for i := range c.answers {
+			d := &c.answers[i]
+			rp.sinkAns = int32(i)
+			if err := rp.apply(d); err != nil {
+				b.Fatal(err)
+			}
+		}
+		rp.sink = nil
+	}
+	b.ResetTimer()
+	cpu0 := cpuTime()
+	defer func() { b.ReportMetric(float64(cpuTime()-cpu0)/float64(b.N), "cpu-ns/answer") }()
+	done := 0
+	for done < b.N {
+		for _, c := range chunks {
+			formatRows(c)
+			done += len(c.rows)
 			if done >= b.N {
 				break
 			}

@@ -685,3 +685,247 @@ func TestSortedAUC(t *testing.T) {
 		t.Fatal("no AUC")
 	}
 }
+
+// fastDecodeCases are lines for the fast path's tests: the common shape
+// and its variations, each of which the fast path must either read exactly
+// as state.NativeDecoder does or leave to it.
+var fastDecodeCases = []string{
+	`{"id":"a1","learner":"hl-1","item":"q1","skills":["trial-balance"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s1","s2","s1"],"correct":false,"at":"2025-09-01T18:00:40Z"}`,
+	`{ "id" : "a1" , "learner" : "hl-1" , "skills" : [ "s1" , "s2" ] , "correct" : true , "at" : "2025-09-01T18:00:40.123456789Z" }`,
+	`{"version":1,"id":"a,1","learner":" hl-1","skills":["a,b"],"correct":true,"at":"2024-02-29T23:59:59.000000001Z"}`,
+	`{"id":"a1","learner":"a-learner-id-longer-than-sixteen","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.100Z","note":"x","n":-1.5e+3,"t":true,"f":false,"z":null,"k":0}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T20:00:40.8+02:00"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.1234567891Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01t18:00:40Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-02-29T18:00:40Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2000-02-29T18:00:40Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"1900-02-29T18:00:40Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-31T18:00:40Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-13-01T18:00:40Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T24:00:00Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T23:60:00Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T23:59:60Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"1500-01-01T00:00:00Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2262-04-11T23:47:16.854775807Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2262-04-11T23:47:16.854775808Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"1677-09-21T00:12:43.145224192Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"9999-12-31T23:59:59Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"0000-01-01T00:00:00Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","version":2}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","version":1.0}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","version":01}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","version":10}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","id":"a2"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","ID":"a2"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","Skills":[]}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","extra":{"a":1}}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","extra":[1]}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","n":01}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","n":1.}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","n":-}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","n":1e}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z","n":nul}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":truex,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":"true","at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z",}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"} x`,
+	`{"id":"a1","learner":"hl-1","skills":["s",],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":[],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":[""],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":"s","correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":null,"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","item":null,"skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","item":7,"skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true}`,
+	`{"id":"a1","learner":"hl-1","item":"q1","correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a\"1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a\u00e91","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"aé1","learner":"hl-é","skills":["sé"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	"{\"id\":\"a\x001\",\"learner\":\"hl-1\",\"skills\":[\"s\"],\"correct\":true,\"at\":\"2025-09-01T18:00:40.8Z\"}",
+	"{\"id\":\"a1\",\t\"learner\":\"hl-1\",\"skills\":[\"s\"],\"correct\":true,\"at\":\"2025-09-01T18:00:40.8Z\"}",
+	"{\"id\":\"a1\x7f\",\"learner\":\"hl-1\",\"skills\":[\"s\"],\"correct\":true,\"at\":\"2025-09-01T18:00:40.8Z\"}",
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z}`,
+	`{"id":"a1" "learner":"hl-1","skills":["s"],"correct":true,"at":"2025-09-01T18:00:40.8Z"}`,
+	`{"id":"a1","learner":"hl-1","skills":["s"],"correct":true,"at":2025}`,
+	`{}`, `{"}`, `{"":1}`, `[]`, `"x"`, `null`, `{"id":}`,
+}
+
+// fastDecode reads exactly what state.NativeDecoder reads, on every line it
+// takes, and takes the common shape (so that replay's figures are of the
+// fast path).
+func TestReplayFastDecode(t *testing.T) {
+	var dec state.NativeDecoder
+	took := 0
+	for _, line := range fastDecodeCases {
+		if checkFastDecode(t, &dec, line) {
+			took++
+		}
+	}
+	for _, line := range fastDecodeCases[:5] {
+		var fd fastDecoder
+		var sk []string
+		if _, ok := fd.decode(line, &sk); !ok {
+			t.Errorf("the fast path left a line of the common shape to the decoder: %s", line)
+		}
+	}
+	// Every line of the replay fixtures of the common shape.
+	for _, name := range []string{replayInput, "../testdata/replay/extras-middle.jsonl", "../testdata/replay/extras-end.jsonl"} {
+		for _, line := range strings.Split(string(readFile(t, name)), "\n") {
+			if checkFastDecode(t, &dec, strings.TrimSpace(line)) {
+				took++
+			}
+		}
+	}
+	if took < 1000 {
+		t.Errorf("the fast path took only %d lines", took)
+	}
+}
+
+// checkFastDecode compares the two decoders on line and reports whether the
+// fast path took it.
+func checkFastDecode(t *testing.T, dec *state.NativeDecoder, line string) bool {
+	t.Helper()
+	var fd fastDecoder
+	sk := []string{"before"}
+	fa, ok := fd.decode(line, &sk)
+	if !ok {
+		if len(sk) != 1 {
+			t.Errorf("%s: the fast path refused the line but kept %d skills", line, len(sk)-1)
+		}
+		return false
+	}
+	a, err := dec.Decode([]byte(line))
+	if err != nil {
+		t.Errorf("%s: the fast path took a line the decoder rejects (%v)", line, err)
+		return true
+	}
+	if a.At.Before(minReplayAt) || a.At.After(maxReplayAt) {
+		t.Errorf("%s: the fast path took a time beyond the storable range", line)
+	}
+	if fa.id != a.ID || fa.learner != a.Learner || fa.correct != a.Correct || fa.at != a.At.UnixNano() || !slices.Equal(sk[1:], a.Skills) {
+		t.Errorf("%s: fast path %+v %q, decoder %+v", line, fa, sk[1:], a)
+	}
+	if fa.atText != "" && fa.atText != string(appendUTC(nil, fa.at)) {
+		t.Errorf("%s: time text %q kept, but appendUTC writes %q", line, fa.atText, appendUTC(nil, fa.at))
+	}
+	return true
+}
+
+func FuzzReplayFastDecode(f *testing.F) {
+	for _, line := range fastDecodeCases {
+		f.Add(line)
+	}
+	var dec state.NativeDecoder
+	f.Fuzz(func(t *testing.T, line string) {
+		checkFastDecode(t, &dec, strings.TrimSpace(line))
+	})
+}
+
+// parseUTC agrees with time.Parse on every day of 1700–2200 and on times
+// within a day.
+func TestReplayParseUTC(t *testing.T) {
+	var fd fastDecoder
+	check := func(s string) {
+		t.Helper()
+		got, ok := fd.parseUTC(s)
+		want, err := time.Parse(time.RFC3339Nano, s)
+		if !ok || err != nil || got != want.UnixNano() {
+			t.Fatalf("%s: parseUTC %d %v, time.Parse %v %v", s, got, ok, want, err)
+		}
+	}
+	for d := time.Date(1700, 1, 1, 0, 0, 0, 0, time.UTC); d.Year() <= 2200; d = d.AddDate(0, 0, 1) {
+		check(d.Format("2006-01-02T15:04:05Z"))
+	}
+	r := rand.New(rand.NewPCG(7, 8))
+	for range 100000 {
+		lo, hi := time.Date(1700, 1, 1, 0, 0, 0, 0, time.UTC).Unix(), time.Date(2201, 1, 1, 0, 0, 0, 0, time.UTC).Unix()
+		ns := time.Unix(lo+r.Int64N(hi-lo), 0).UnixNano()
+		switch r.IntN(3) {
+		case 1:
+			ns += r.Int64N(1e9)
+		case 2:
+			ns += r.Int64N(1000) * 1e6
+		}
+		s := string(appendUTC(nil, ns))
+		check(s)
+		if _, canonical, _ := fd.parseAt(s); !canonical {
+			t.Fatalf("%s: appendUTC's own text is not kept as it is", s)
+		}
+	}
+}
+
+// A replay reads the same answers whichever of the two decoders reads a
+// line: the same file with every line made to go the decoder's way (a tab
+// after the opening brace, valid JSON the fast path leaves alone) gives the
+// same predictions.csv and events.csv and the same counts.
+func TestReplayFastPathSameOutputs(t *testing.T) {
+	var lines []string
+	for _, name := range []string{replayInput} {
+		lines = append(lines, strings.Split(string(readFile(t, name)), "\n")...)
+	}
+	lines = append(lines, fastDecodeCases...)
+	var slow strings.Builder
+	for _, l := range lines {
+		if strings.HasPrefix(l, "{") {
+			l = "{\t" + l[1:]
+		}
+		slow.WriteString(l + "\n")
+	}
+	dir := t.TempDir()
+	fast, slowPath := filepath.Join(dir, "fast.jsonl"), filepath.Join(dir, "slow.jsonl")
+	if err := os.WriteFile(fast, []byte(strings.Join(lines, "\n")+"\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(slowPath, []byte(slow.String()), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	for _, order := range []Order{OrderAt, OrderArrival} {
+		opt := ReplayOptions{Params: []NamedParams{loadParams(t, "params-a.json"), loadParams(t, "params-b.json")}, Policies: fixturePolicies, Order: order}
+		_, rf, df := runReplay(t, fast, opt)
+		_, rs, ds := runReplay(t, slowPath, opt)
+		if rf.Answers != rs.Answers || rf.Rejected != rs.Rejected || rf.Duplicates != rs.Duplicates || rf.Late != rs.Late || rf.Learners != rs.Learners || rf.Answers < 1400 {
+			t.Errorf("%s: fast path %d answers, %d rejected, %d duplicates, %d late, %d learners; decoder %d, %d, %d, %d, %d",
+				order, rf.Answers, rf.Rejected, rf.Duplicates, rf.Late, rf.Learners, rs.Answers, rs.Rejected, rs.Duplicates, rs.Late, rs.Learners)
+		}
+		for _, name := range []string{"predictions.csv", "events.csv"} {
+			if !bytes.Equal(readFile(t, filepath.Join(df, name)), readFile(t, filepath.Join(ds, name))) {
+				t.Errorf("%s (%s order): the fast path's differs from the decoder's", name, order)
+			}
+		}
+	}
+}
+
+// needsQuotesString, eight bytes at a time, agrees with a byte-by-byte
+// reading: every special byte at every position of strings of 1–24 bytes,
+// among plain, high and neighbouring bytes.
+func TestReplayNeedsQuotes(t *testing.T) {
+	want := func(s string) bool {
+		return s != "" && (s[0] == ' ' || strings.ContainsAny(s, ",\"\r\n"))
+	}
+	for n := 1; n <= 24; n++ {
+		for _, fill := range []byte{'a', 0xff, 0x80, '+', '-', '!', '#', '\t', '\f', 0x0b, 0x0e, 0x0c} {
+			base := bytes.Repeat([]byte{fill}, n)
+			if got := needsQuotesString(string(base)); got != want(string(base)) {
+				t.Errorf("%q: %v", base, got)
+			}
+			for i := range n {
+				for _, c := range []byte{',', '"', '\r', '\n', ' '} {
+					b := slices.Clone(base)
+					b[i] = c
+					if got := needsQuotesString(string(b)); got != want(string(b)) {
+						t.Errorf("%q: %v", b, got)
+					}
+				}
+			}
+		}
+	}
+}
