@@ -3,6 +3,7 @@ package stream
 import (
 	"context"
 	"os"
+	"runtime/pprof"
 	"strconv"
 	"sync"
 	"sync/atomic"
@@ -57,12 +58,19 @@ func BenchmarkThroughput(b *testing.B) {
 	b.Logf("filled %s with %d answers in %v", tAnswers, n, time.Since(t0).Round(time.Millisecond))
 
 	var raw, attain float64
-	var shutdown, batchAge time.Duration
+	var shutdown, batchAge, rawCPU, attainCPU time.Duration
 	b.ResetTimer()
 	for i := 0; i < b.N; i++ {
+		c0 := processCPU()
 		raw = rawRate(b, br.Addr(), partitions, n)
-		attain = attainRate(b, br.Addr(), n, i, &shutdown, &batchAge)
+		c1 := processCPU()
+		attain = attainRate(b, br.Addr(), n, i, &shutdown, &batchAge, &attainCPU)
+		rawCPU = c1 - c0
 	}
+	// CPU per answer (user + system, the whole process: the embedded
+	// broker serving the fetches is counted on both sides).
+	b.ReportMetric(float64(rawCPU.Nanoseconds())/1e3/float64(n), "cpu-us/answer-raw")
+	b.ReportMetric(float64(attainCPU.Nanoseconds())/1e3/float64(n), "cpu-us/answer-attain")
 	b.ReportMetric(shutdown.Seconds(), "shutdown-s")
 	b.ReportMetric(float64(batchAge.Milliseconds()), "batch-age-max-ms")
 	b.ReportMetric(raw, "answers/s-raw")
@@ -116,18 +124,31 @@ func rawRate(b *testing.B, addr string, partitions, n int) float64 {
 
 // attainRate runs the processor over the whole topic with a new store and
 // a new consumer group.
-func attainRate(b *testing.B, addr string, n, iter int, shutdown, batchAge *time.Duration) float64 {
+func attainRate(b *testing.B, addr string, n, iter int, shutdown, batchAge, cpu *time.Duration) float64 {
 	st := openTestStore(b, b.TempDir())
 	defer st.Close()
 	rp := startProcessor(b, addr, st, state.NewRegistry(nil), ProcessorOptions{Group: "bench-" + strconv.Itoa(iter)})
 	var start time.Time
+	var c0 time.Duration
+	if path := os.Getenv("ATTAIN_BENCH_CPUPROFILE"); path != "" {
+		// A profile of the processor's run alone (not the fill, not raw).
+		f, err := os.Create(path)
+		if err != nil {
+			b.Fatal(err)
+		}
+		defer f.Close()
+		if err := pprof.StartCPUProfile(f); err != nil {
+			b.Fatal(err)
+		}
+		defer pprof.StopCPUProfile()
+	}
 	deadline := time.Now().Add(5 * time.Minute)
 	// Done is every answer in a committed batch and every output
 	// acknowledged by the broker (outbox empty): what a crash could no
 	// longer lose.
 	for rp.m.Committed.Load() < int64(n) || st.OutboxDepth() != 0 {
 		if start.IsZero() && rp.m.Consumed.Load() > 0 {
-			start = time.Now()
+			start, c0 = time.Now(), processCPU()
 		}
 		if time.Now().After(deadline) {
 			b.Fatalf("attain committed %d of %d in 5 minutes", rp.m.Committed.Load(), n)
@@ -135,6 +156,7 @@ func attainRate(b *testing.B, addr string, n, iter int, shutdown, batchAge *time
 		time.Sleep(time.Millisecond)
 	}
 	el := time.Since(start)
+	*cpu = processCPU() - c0
 	*batchAge = time.Duration(rp.m.MaxBatchAge.Load())
 	t0 := time.Now()
 	rp.stop(b)
