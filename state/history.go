@@ -30,7 +30,11 @@ func (s *Store) History(learner, skill string) ([]HistoryEntry, error) {
 	}
 	var out []HistoryEntry
 	var rk []byte
-	for _, p := range s.partList() {
+	parts := s.partList()
+	if err := s.settle(parts); err != nil {
+		return nil, fmt.Errorf("attain: reading history of learner %q skill %q: %w", learner, skill, err)
+	}
+	for _, p := range parts {
 		rk = recordKey(rk[:0], p, learner, skill)
 		err := s.historyOf(s.db, rk, func(h HistoryEntry) { out = append(out, h) })
 		if err != nil {
@@ -115,9 +119,15 @@ func (s *Store) ScanHistory(fn func(learner, skill string, h []HistoryEntry) err
 	if s.closed {
 		return ErrStoreClosed
 	}
-	// One snapshot is one consistent view of the whole database, so every
-	// partition is read as of the same moment. Partitions are listed after
-	// it is taken: a partition is listed before its first commit.
+	// The logs are materialized first (the scan reads keys only). One
+	// snapshot is then one consistent view of the whole database: every
+	// partition is read as of the same moment, its keys holding every
+	// commit up to its last checkpoint (commits after the settle stay in
+	// logs the snapshot does not read). Partitions are listed after it is
+	// taken: a partition is listed before its first commit.
+	if err := s.settle(s.partList()); err != nil {
+		return fmt.Errorf("attain: scanning history: %w", err)
+	}
 	snap := s.db.NewSnapshot()
 	defer snap.Close()
 	for _, p := range s.partList() {

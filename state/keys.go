@@ -15,6 +15,7 @@ import (
 //	window   P 0x03 learner                         → appendWindow (schema 1 only: read, then deleted once a record carries the window)
 //	state    P 0x04                                 → appendPartState (consumed offset, next outbox seq, record count)
 //	outbox   P 0x05 seq(BE8)                        → appendOutbox
+//	log      P 0x07 seq(BE8)                        → record log: the record, history and window keys of one commit (store_log.go)
 //	meta     FFFFFFFF 0x06 name                     → store-wide metadata (schema version)
 //
 // Learner and skill names never contain NUL (the decoder and Apply reject
@@ -30,6 +31,7 @@ const (
 	famState   byte = 0x04
 	famOutbox  byte = 0x05
 	famMeta    byte = 0x06
+	famLog     byte = 0x07
 )
 
 // metaPartition is the pseudo-partition of store-wide metadata keys.

@@ -38,7 +38,7 @@ var (
 // build reads both, so a schema 1 store is taken over as it is: its schema
 // key is set to 2 at open, since values a schema 1 build cannot read may be
 // written from then on.
-const storeSchema = 2
+const storeSchema = 3
 
 // Defaults of StoreOptions (our choices, sized so that a million
 // learner-skill records fit well inside 512 MiB; see bench_test.go).
@@ -135,12 +135,20 @@ type Store struct {
 	records  atomic.Int64
 
 	applied, duplicates, late, rederived, deadLetters, skipped, replayed atomic.Int64
-	commits, commitFailures                                              atomic.Int64
+	commits, commitFailures, checkpoints, pinnedHits                     atomic.Int64
 }
 
 type partSlot struct {
 	mu     sync.Mutex
 	handle *Partition
+	// The record log's checkpoints (store_log.go), under mu: gen counts
+	// the checkpoints committed; bgRunning is set while a background one
+	// runs; bgOwner and bgDone tell the handle that started one that its
+	// logs up to bgDone are checkpointed.
+	gen       uint64
+	bgRunning bool
+	bgOwner   *Partition
+	bgDone    uint64
 }
 
 // OpenStore opens (or creates) the store in dir.
@@ -226,12 +234,14 @@ func (s *Store) checkSchema(dir string) error {
 	if n <= 0 {
 		return fmt.Errorf("%w: %s: schema value %x is malformed", ErrStoreSchema, dir, v)
 	}
-	if got == 1 {
+	if got == 1 || got == 2 {
+		// Schema 3 reads both as they are: 2 added history tails in record
+		// values (schema 1 has none), 3 the record log (neither has logs).
 		val := binary.AppendUvarint([]byte{metaV1}, storeSchema)
 		if err := s.db.Set(k, val, pebble.Sync); err != nil {
 			return fmt.Errorf("attain: upgrading the store schema in %s: %w", dir, err)
 		}
-		s.log.Info().Str("dir", dir).Msg("store schema 1 taken over as schema 2 (history tails in record values)")
+		s.log.Info().Str("dir", dir).Uint64("from", got).Int("to", storeSchema).Msg("store schema taken over (history tails in record values since 2, the record log since 3)")
 		return nil
 	}
 	if got != storeSchema {
@@ -342,6 +352,10 @@ func (s *Store) Learner(learner string) (map[string]Record, bool, error) {
 	if s.closed {
 		return nil, false, ErrStoreClosed
 	}
+	parts := s.partList()
+	if err := s.settle(parts); err != nil {
+		return nil, false, fmt.Errorf("attain: reading learner %q: %w", learner, err)
+	}
 	it, err := s.db.NewIter(nil)
 	if err != nil {
 		return nil, false, fmt.Errorf("attain: reading learner %q: %w", learner, err)
@@ -349,7 +363,7 @@ func (s *Store) Learner(learner string) (map[string]Record, bool, error) {
 	defer it.Close()
 	var out map[string]Record
 	var prefix []byte
-	for _, p := range s.partList() {
+	for _, p := range parts {
 		prefix = learnerRecordPrefix(prefix[:0], p, learner)
 		for ok := it.SeekGE(prefix); ok && bytes.HasPrefix(it.Key(), prefix); ok = it.Next() {
 			v, err := it.ValueAndErr()
@@ -380,7 +394,8 @@ func (s *Store) Learner(learner string) (map[string]Record, bool, error) {
 type StoreStats struct {
 	// CacheHits and CacheMisses count the answers whose learner was found
 	// in, or missing from, the cache (answers of a learner already staged
-	// in the batch in hand are neither).
+	// in the batch in hand are neither; a learner pinned in memory since
+	// the last checkpoint, see store_log.go, is a hit).
 	CacheHits, CacheMisses, Records int64
 	CachedRecords                   int64 // records held by the cache (≤ CacheRecords)
 	CachedLearners                  int64 // learners held by the cache (≤ CacheLearners)
@@ -394,6 +409,7 @@ type StoreStats struct {
 	Skipped                 int64 // offsets staged by Skip
 	Replayed                int64 // Apply/DeadLetter/Skip calls at or below the stored offset (no-ops)
 	Commits, CommitFailures int64
+	Checkpoints             int64 // record-log checkpoints (store_log.go)
 	OutboxDepth             int64
 	Partitions              int
 	BlockCacheBytes         int64 // Pebble block cache in use
@@ -408,7 +424,7 @@ func (s *Store) Stats() StoreStats {
 	learners, records := s.cache.size()
 	hits, misses := s.cache.counts()
 	st := StoreStats{
-		CacheHits:      hits,
+		CacheHits:      hits + s.pinnedHits.Load(),
 		CacheMisses:    misses,
 		Records:        s.records.Load(),
 		CachedRecords:  int64(records),
@@ -422,6 +438,7 @@ func (s *Store) Stats() StoreStats {
 		Replayed:       s.replayed.Load(),
 		Commits:        s.commits.Load(),
 		CommitFailures: s.commitFailures.Load(),
+		Checkpoints:    s.checkpoints.Load(),
 		OutboxDepth:    s.depth.Load(),
 	}
 	s.mu.Lock()

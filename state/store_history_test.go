@@ -122,7 +122,7 @@ func TestLongHistoriesInChunks(t *testing.T) {
 // build, reads it, and goes on applying answers: the old history and the
 // new are one history, a resend of an id in the old window is a
 // duplicate, the old window key is removed once the window lives in a
-// record, and the schema key says 2.
+// record, and the schema key says 3.
 func TestSchema1StoreTakenOver(t *testing.T) {
 	dir := t.TempDir()
 	pf := NewParamFile()
@@ -211,8 +211,8 @@ func TestSchema1StoreTakenOver(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if !bytes.Equal(v, binary.AppendUvarint([]byte{metaV1}, storeSchema)) || storeSchema != 2 {
-		t.Errorf("schema value %x, want schema 2", v)
+	if !bytes.Equal(v, binary.AppendUvarint([]byte{metaV1}, storeSchema)) || storeSchema != 3 {
+		t.Errorf("schema value %x, want schema 3", v)
 	}
 	closer.Close()
 }

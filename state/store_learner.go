@@ -29,6 +29,8 @@ type learnerVal struct {
 	baseSeq uint64
 	newBase bool // the commit being written writes a whole window
 
+	lastLog uint64 // the handle's log that last wrote the learner (store_log.go)
+
 	// Staging, emptied by Commit.
 	dirty   []*recState // records changed since the last commit, in the order first changed
 	carrier *recState   // the record that carries the window in the next commit: the latest answer's
@@ -39,7 +41,8 @@ type learnerVal struct {
 type recState struct {
 	skill  string
 	rv     recVal
-	chunks []histChunk // full tails moved out of the value since the last Commit, in order
+	chunks []histChunk   // full tails moved out of the value since the last Commit, in order
+	logged []loggedChunk // chunks committed in logs not known to be checkpointed, in order
 	dirty  bool
 }
 
@@ -88,6 +91,12 @@ func (lv *learnerVal) windowToWrite(buf *window) (w *window, whole bool) {
 	return buf, false
 }
 
+// loggedChunk is a history chunk committed in the handle's log seq.
+type loggedChunk struct {
+	seq uint64
+	histChunk
+}
+
 // histChunk is a history chunk staged for its key: n answers from
 // opportunity first on, in the compact encoding.
 type histChunk struct {
@@ -109,6 +118,10 @@ const (
 func (pt *Partition) loadLearner(lk []byte) (lv *learnerVal, staged bool, err error) {
 	if lv := pt.learners[string(lk)]; lv != nil {
 		return lv, true, nil
+	}
+	if lv := pt.unckpt[string(lk)]; lv != nil {
+		pt.cnt.pinned++ // counted as a cache hit
+		return lv, false, nil
 	}
 	if lv, ok := pt.s.cache.get(pt.p, lk); ok {
 		return lv, false, nil

@@ -74,6 +74,19 @@ type Partition struct {
 	batch    *pebble.Batch
 	learners map[string]*learnerVal // learners changed since the last Commit, by key
 
+	// The record log (store_log.go). unckpt pins the learners committed
+	// since the handle's last checkpoint: their latest state is in logs,
+	// not in their keys, so they are never read back from Pebble (nor lost
+	// to a cache eviction). unsettled is set when the pinned state was
+	// dropped (a failed commit): the logs are materialized before the next
+	// read.
+	unckpt    map[string]*learnerVal
+	logSeq    uint64 // the next log key's sequence
+	sinceCkpt int    // logs written since the last checkpoint
+	logBytes  int    // their size
+	unsettled bool
+	logbuf    []byte
+
 	skillNames map[string]string // see intern
 
 	kbuf, vbuf, lkbuf, rkbuf []byte
@@ -84,7 +97,7 @@ type Partition struct {
 	// the store's (at every Commit and at Release): one shared atomic add
 	// per batch instead of several per answer, which the partitions'
 	// goroutines on other processors would contend for.
-	cnt struct{ applied, duplicates, late, rederived, deadLetters, skipped, replayed int64 }
+	cnt struct{ applied, duplicates, late, rederived, deadLetters, skipped, replayed, pinned int64 }
 }
 
 // skillWork is one skill of the answer being applied, between the reads
@@ -125,6 +138,12 @@ func (s *Store) Partition(p int32) (*Partition, error) {
 		s.log.Warn().Int32("partition", p).Msg("partition taken while an older handle was not released; the older one is fenced")
 	}
 	s.cache.dropPartition(p)
+	// What an earlier handle (or a run that crashed) left in logs is
+	// checkpointed first: from here on the keys hold committed state and
+	// every log is this handle's.
+	if _, err := s.materialize(sl, p, true); err != nil {
+		return nil, err
+	}
 	st := partState{nextSeq: 1}
 	v, closer, err := s.db.Get(stateKey(p))
 	switch {
@@ -165,6 +184,8 @@ func (s *Store) Partition(p int32) (*Partition, error) {
 		batch:      s.db.NewBatch(),
 		learners:   make(map[string]*learnerVal),
 		skillNames: make(map[string]string),
+		unckpt:     make(map[string]*learnerVal),
+		logSeq:     1,
 	}
 	sl.handle = pt
 	return pt, nil
@@ -263,6 +284,9 @@ func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResu
 	}
 	if params == nil {
 		return ApplyResult{}, fmt.Errorf("attain: partition %d: Apply needs a parameter set (nil given)", pt.p)
+	}
+	if err := pt.resettle(); err != nil {
+		return ApplyResult{}, err
 	}
 	if err := checkAnswer(&a); err != nil {
 		return ApplyResult{}, err
@@ -410,7 +434,22 @@ func (pt *Partition) rederive(lv *learnerVal, sw *skillWork, p Params, v int64) 
 	}
 	err := pt.s.historyKeys(pt.s.db, rk, apply)
 	if err == nil && sw.rs != nil {
+		// The chunks committed in logs since the last checkpoint, unless a
+		// reader's settle has written them to their keys already (the keys
+		// hold opportunities 1 to n, in order), then the chunks staged.
+		stored := n
+		for _, c := range sw.rs.logged {
+			if c.first <= stored {
+				continue
+			}
+			if _, err = forHistEntries(c.entries, uint64(c.n), apply); err != nil {
+				break
+			}
+		}
 		for _, c := range sw.rs.chunks {
+			if err != nil {
+				break
+			}
 			if _, err = forHistEntries(c.entries, uint64(c.n), apply); err != nil {
 				break
 			}
@@ -489,33 +528,44 @@ func (pt *Partition) Commit(sync bool) error {
 		pt.dropStaging()
 		return fmt.Errorf("%w: partition %d (a newer handle took it)", ErrPartitionReleased, pt.p)
 	}
+	if sl := pt.slot; sl.bgOwner == pt {
+		pt.unpin(sl.bgDone)
+		sl.bgOwner = nil
+	}
 	s.mu.Lock()
 	s.parts[pt.p] = struct{}{} // before the commit, so readers that list partitions after opening an iterator see it
 	s.mu.Unlock()
 
+	// The batch's records, chunks and window deletions go into one log
+	// value (store_log.go).
+	lb := append(pt.logbuf[:0], logV1)
 	for _, lv := range pt.learners {
 		for _, rs := range lv.dirty {
 			pt.rkbuf = append(append(pt.rkbuf[:0], lv.key...), rs.skill...)
 			for _, c := range rs.chunks {
 				pt.kbuf = historyKeyFromRecordKey(pt.kbuf[:0], pt.rkbuf, c.first)
 				pt.vbuf = appendHistoryChunk(pt.vbuf[:0], c.n, c.entries)
-				pt.set(pt.kbuf, pt.vbuf)
+				lb = appendLogSet(lb, pt.kbuf, pt.vbuf)
 			}
 			var w *window
 			if rs == lv.carrier {
 				w, lv.newBase = lv.windowToWrite(&pt.dwin)
 			}
 			pt.vbuf = appendRecordVal(pt.vbuf[:0], &rs.rv, w)
-			pt.set(pt.rkbuf, pt.vbuf)
+			lb = appendLogSet(lb, pt.rkbuf, pt.vbuf)
 		}
 		if lv.legacyWin {
 			// The window now lives in a record: the schema 1 window key goes.
 			pt.kbuf = appendPartFamily(pt.kbuf[:0], uint32(pt.p), famWindow)
 			pt.kbuf = append(pt.kbuf, lv.key[partPrefixLen:len(lv.key)-1]...)
-			if err := pt.batch.Delete(pt.kbuf, nil); err != nil {
-				panic(fmt.Sprintf("attain: staging into partition %d's batch: %v", pt.p, err))
-			}
+			lb = appendLogDelete(lb, pt.kbuf)
 		}
+	}
+	pt.logbuf = lb
+	logged := len(lb) > 1
+	if logged {
+		pt.kbuf = logKey(pt.kbuf[:0], pt.p, pt.logSeq)
+		pt.set(pt.kbuf, lb)
 	}
 	pt.vbuf = appendPartState(pt.vbuf[:0], pt.staged)
 	pt.set(stateKey(pt.p), pt.vbuf)
@@ -539,10 +589,15 @@ func (pt *Partition) Commit(sync bool) error {
 			lv.baseRec, lv.baseSeq, lv.newBase = lv.carrier, lv.win.seq, false
 		}
 		for _, rs := range lv.dirty {
+			for _, c := range rs.chunks {
+				rs.logged = append(rs.logged, loggedChunk{seq: pt.logSeq, histChunk: c})
+			}
 			rs.dirty, rs.chunks = false, nil
 		}
 		clear(lv.dirty)
 		lv.dirty, lv.carrier, lv.legacyWin = lv.dirty[:0], nil, false
+		lv.lastLog = pt.logSeq
+		pt.unckpt[lv.key] = lv
 		s.cache.put(pt.p, lv.key, lv, len(lv.recs))
 	}
 	s.records.Add(int64(pt.staged.records) - int64(pt.committed.records))
@@ -550,6 +605,82 @@ func (pt *Partition) Commit(sync bool) error {
 	pt.committed = pt.staged
 	pt.batch.Reset()
 	pt.clearStaging()
+	if logged {
+		pt.logSeq++
+		pt.sinceCkpt++
+		pt.logBytes += len(pt.logbuf)
+	}
+	if len(pt.logbuf) > checkpointBytes {
+		pt.logbuf = nil // not kept at the size of an unusually large batch
+	}
+	// The commit stands whatever happens below: a failed checkpoint
+	// leaves the logs, which the next one (or the next handle)
+	// materializes.
+	sl := pt.slot
+	switch {
+	case pt.sinceCkpt == 0:
+	case sync || pt.logBytes >= 4*checkpointBytes:
+		if err := pt.checkpoint(sync); err != nil {
+			s.log.Error().Err(err).Int32("partition", pt.p).Msg("checkpointing the record log failed; the logs are kept and checkpointed later")
+		}
+	case !sl.bgRunning && (pt.sinceCkpt >= checkpointCommits || pt.logBytes >= checkpointBytes):
+		sl.bgRunning = true
+		pt.sinceCkpt, pt.logBytes = 0, 0
+		go s.backgroundCheckpoint(sl, pt.p, pt, pt.logSeq-1)
+	}
+	return nil
+}
+
+// checkpoint materializes all the partition's logs and unpins every
+// learner. The caller holds slot.mu.
+func (pt *Partition) checkpoint(sync bool) error {
+	if _, err := pt.s.materialize(pt.slot, pt.p, sync); err != nil {
+		return err
+	}
+	pt.unpin(^uint64(0))
+	pt.sinceCkpt, pt.logBytes = 0, 0
+	return nil
+}
+
+// unpin forgets what the checkpoint of the handle's logs up to upTo put
+// in the keys: the learners last written by those logs are unpinned, and
+// the logged chunks of the others lose those logs' chunks.
+func (pt *Partition) unpin(upTo uint64) {
+	for k, lv := range pt.unckpt {
+		done := lv.lastLog <= upTo
+		for _, rs := range lv.recs {
+			i := 0
+			for i < len(rs.logged) && (done || rs.logged[i].seq <= upTo) {
+				i++
+			}
+			if i == len(rs.logged) {
+				rs.logged = nil
+			} else if i > 0 {
+				rs.logged = append(rs.logged[:0], rs.logged[i:]...)
+			}
+		}
+		if done {
+			delete(pt.unckpt, k)
+		}
+	}
+}
+
+// resettle materializes the logs when the pinned learners were dropped
+// (after a failed commit), so that reads of Pebble see committed state.
+// The caller holds s.closeMu shared.
+func (pt *Partition) resettle() error {
+	if !pt.unsettled {
+		return nil
+	}
+	pt.slot.mu.Lock()
+	defer pt.slot.mu.Unlock()
+	if pt.slot.handle != pt || pt.fenced.Load() {
+		return fmt.Errorf("%w: partition %d (a newer handle took it)", ErrPartitionReleased, pt.p)
+	}
+	if err := pt.checkpoint(false); err != nil {
+		return err
+	}
+	pt.unsettled = false
 	return nil
 }
 
@@ -563,6 +694,11 @@ func (pt *Partition) dropStaging() {
 	pt.staged = pt.committed
 	pt.clearStaging()
 	pt.s.cache.dropPartition(pt.p)
+	// The pinned learners hold the abandoned staging too (Apply changes
+	// them in place): dropped, and the logs materialized before the next
+	// read.
+	clear(pt.unckpt)
+	pt.unsettled = true
 }
 
 func (pt *Partition) clearStaging() {
@@ -601,10 +737,10 @@ func (pt *Partition) flushCounts() {
 		n   int64
 		dst *atomic.Int64
 	}{{c.applied, &s.applied}, {c.duplicates, &s.duplicates}, {c.late, &s.late}, {c.rederived, &s.rederived},
-		{c.deadLetters, &s.deadLetters}, {c.skipped, &s.skipped}, {c.replayed, &s.replayed}} {
+		{c.deadLetters, &s.deadLetters}, {c.skipped, &s.skipped}, {c.replayed, &s.replayed}, {c.pinned, &s.pinnedHits}} {
 		if x.n != 0 {
 			x.dst.Add(x.n)
 		}
 	}
-	*c = struct{ applied, duplicates, late, rederived, deadLetters, skipped, replayed int64 }{}
+	*c = struct{ applied, duplicates, late, rederived, deadLetters, skipped, replayed, pinned int64 }{}
 }
