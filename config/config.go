@@ -88,8 +88,9 @@ type Batch struct {
 type Cache struct {
 	// Records bounds the write-through cache, in learner-skill records.
 	Records int `yaml:"records"`
-	// BlockCacheMB is Pebble's block cache in MiB (outside the Go heap
-	// when built with cgo).
+	// BlockCacheMB is Pebble's cache in MiB: the block cache, with the
+	// memtables (a third of it, up to 64 MiB) reserved inside it. Outside
+	// the Go heap when built with cgo.
 	BlockCacheMB int `yaml:"block_cache_mb"`
 }
 
@@ -156,7 +157,7 @@ func Default() Config {
 		// Commit at least every 100 ms or 10000 answers (ARCHITECTURE.md,
 		// Durability).
 		Batch: Batch{Interval: 100 * time.Millisecond, MaxAnswers: 10000},
-		Cache: Cache{Records: 200_000, BlockCacheMB: 64},
+		Cache: Cache{Records: 200_000, BlockCacheMB: 144},
 		// Sources of the thresholds are on state.Policy's fields.
 		Model:    Model{Threshold: pol.Threshold, StuckAfter: int(pol.StuckAfter)},
 		Producer: Producer{Balancer: "murmur2"},
@@ -173,7 +174,8 @@ func (c Config) Policy() state.Policy {
 
 // StoreOptions returns the options of state.OpenStore that the config
 // sets: the cache sizes, the dedupe window and the thresholds. The store's
-// other options (CacheLearners, MemTableBytes) keep their defaults.
+// other options (CacheLearners, MemTableBytes) keep their defaults (the
+// memtable's follows the block cache).
 // Validate first: every value here is then one the store accepts.
 func (c Config) StoreOptions(logger zerolog.Logger) state.StoreOptions {
 	return state.StoreOptions{

@@ -53,7 +53,7 @@
 //	batch.interval              ATTAIN_BATCH_INTERVAL              -                      100ms
 //	batch.max_answers           ATTAIN_BATCH_MAX_ANSWERS           -                      10000
 //	cache.records               ATTAIN_CACHE_RECORDS               -                      200000
-//	cache.block_cache_mb        ATTAIN_CACHE_BLOCK_CACHE_MB        -                      64
+//	cache.block_cache_mb        ATTAIN_CACHE_BLOCK_CACHE_MB        -                      144
 //	model.threshold             ATTAIN_MODEL_THRESHOLD             -                      0.95
 //	model.stuck_after           ATTAIN_MODEL_STUCK_AFTER           -                      10
 //	producer.balancer           ATTAIN_PRODUCER_BALANCER           -                      murmur2

@@ -187,7 +187,7 @@ var badFixtures = map[string]struct {
 		"batch.interval: must be between 1ms and 10s (got 0s); fix: set batch.interval to e.g. 100ms",
 		"batch.max_answers: must be at least 1 (got 0); fix: set batch.max_answers to e.g. 10000",
 		"cache.records: must be at least 1 (got -1); the store has no setting without a record cache",
-		"cache.block_cache_mb: must be between 1 and 1048576 MiB (got 0); fix: set cache.block_cache_mb to e.g. 64",
+		"cache.block_cache_mb: must be between 1 and 1048576 MiB (got 0); fix: set cache.block_cache_mb to e.g. 144",
 		"model.threshold: must be strictly between 0 and 1 (got 1.5); fix: set model.threshold to e.g. 0.95",
 		"model.stuck_after: must be between 1 and 4294967295 (got 0); fix: set model.stuck_after to e.g. 10",
 		`producer.balancer: must be one of murmur2, crc32 (got "murmur3"); fix: did you mean murmur2? set producer.balancer to one of murmur2, crc32`,

@@ -44,7 +44,7 @@ var meanings = map[string]string{
 	"batch.interval":              "Longest time between state commits while answers arrive.",
 	"batch.max_answers":           "Answers after which a state commit happens without waiting for batch.interval.",
 	"cache.records":               "Write-through cache of learner-skill records (Go heap), in records; at least 1.",
-	"cache.block_cache_mb":        "Pebble block cache in MiB. With cgo this memory is outside the Go heap and GOMEMLIMIT.",
+	"cache.block_cache_mb":        "Pebble's cache in MiB, its memtables (a third of it, up to 64 MiB) included. With cgo this memory is outside the Go heap and GOMEMLIMIT.",
 	"model.threshold":             "Mastery threshold: mastered when P(L next) is at least this.",
 	"model.stuck_after":           "Opportunities without ever reaching mastery after which one stuck event is sent.",
 	"producer.balancer":           "Key-to-partition mapping of the output producer: murmur2 (as the Java client) or crc32 (as librdkafka).",

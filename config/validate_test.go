@@ -169,7 +169,7 @@ func TestPolicy(t *testing.T) {
 func TestStoreOptions(t *testing.T) {
 	c := Default()
 	got := c.StoreOptions(zerolog.Nop())
-	if got.CacheRecords != 200_000 || got.BlockCacheBytes != 64<<20 || got.DedupeWindow != 32 || got.Policy != state.DefaultPolicy() {
+	if got.CacheRecords != 200_000 || got.BlockCacheBytes != state.DefaultBlockCacheBytes || got.DedupeWindow != 32 || got.Policy != state.DefaultPolicy() {
 		t.Errorf("Default().StoreOptions() = %+v", got)
 	}
 	c.Cache = Cache{Records: 1, BlockCacheMB: 1}

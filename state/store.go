@@ -41,10 +41,13 @@ var (
 const storeSchema = 3
 
 // Defaults of StoreOptions (our choices, sized so that a million
-// learner-skill records fit well inside 512 MiB; see bench_test.go).
+// learner-skill records fit well inside 512 MiB; see bench_test.go). The
+// block cache is Pebble's whole cache: Pebble reserves its memtables inside
+// it (pebble/v2 db.go, newMemTable: Cache.Reserve), and the default
+// memtable is a third of it (defaultMemTableBytes).
 const (
 	DefaultCacheRecords    = 200_000
-	DefaultBlockCacheBytes = 64 << 20
+	DefaultBlockCacheBytes = 144 << 20
 	DefaultDedupeWindow    = 32
 )
 
@@ -52,7 +55,7 @@ const (
 // default.
 type StoreOptions struct {
 	CacheRecords    int    // write-through cache bound, in learner-skill records (default 200_000)
-	BlockCacheBytes int64  // Pebble block cache (default 64 MiB)
+	BlockCacheBytes int64  // Pebble's cache, memtables included (default 144 MiB)
 	DedupeWindow    int    // applied answer ids remembered per learner (default 32)
 	Policy          Policy // thresholds (zero value: DefaultPolicy())
 	Logger          zerolog.Logger
@@ -61,10 +64,8 @@ type StoreOptions struct {
 	// CacheRecords/4, at least 1024: a learner usually practises several
 	// skills; our choice).
 	CacheLearners int
-	// MemTableBytes is Pebble's memtable size (default 16 MiB. Pebble's own
-	// default is 4 MiB; measured with BenchmarkApplyCommit on the 2-core
-	// development machine, 4 MiB gave about half the answers/s of 16 MiB,
-	// and 64 MiB no more than 16).
+	// MemTableBytes is Pebble's memtable size (default: a third of
+	// BlockCacheBytes, between 1 and 64 MiB; see defaultMemTableBytes).
 	MemTableBytes int
 }
 
@@ -101,7 +102,7 @@ func (o *StoreOptions) setDefaults() error {
 		errs = append(errs, fmt.Errorf("%w: cache learners = %d: must be positive (or 0 for the default)", ErrInvalidStoreOptions, o.CacheLearners))
 	}
 	if o.MemTableBytes == 0 {
-		o.MemTableBytes = 16 << 20
+		o.MemTableBytes = defaultMemTableBytes(o.BlockCacheBytes)
 	}
 	if o.MemTableBytes < 0 {
 		errs = append(errs, fmt.Errorf("%w: memtable bytes = %d: must be positive (or 0 for the default)", ErrInvalidStoreOptions, o.MemTableBytes))
@@ -417,6 +418,10 @@ type StoreStats struct {
 	BlockCacheMisses        int64
 	MemTableBytes           uint64
 	DiskBytes               uint64 // Pebble's files on disk
+	// Bytes Pebble wrote since the store opened: to its write-ahead log,
+	// by flushes of memtables and by compactions (their sum over the
+	// bytes applied is Pebble's write amplification).
+	WALBytes, FlushedBytes, CompactedBytes uint64
 }
 
 // Stats returns the current counters (Pebble's figures are zero after Close).
@@ -453,6 +458,11 @@ func (s *Store) Stats() StoreStats {
 		st.BlockCacheMisses = m.BlockCache.Misses
 		st.MemTableBytes = m.MemTable.Size
 		st.DiskBytes = m.DiskSpaceUsage()
+		st.WALBytes = m.WAL.BytesWritten
+		for _, l := range m.Levels {
+			st.FlushedBytes += l.TableBytesFlushed
+			st.CompactedBytes += l.TableBytesCompacted
+		}
 	}
 	return st
 }
@@ -474,4 +484,21 @@ func (l pebbleLogger) Fatalf(format string, args ...any) {
 	msg := fmt.Sprintf("pebble: "+format, args...)
 	l.log.WithLevel(zerolog.FatalLevel).Msg(msg)
 	panic("attain: " + msg)
+}
+
+// defaultMemTableBytes is the memtable size for a block cache of
+// cacheBytes: a third of it, at most 64 MiB and at least 1 MiB. A third:
+// Pebble stalls writes once its queued memtables reach twice the memtable
+// size (MemTableStopWritesThreshold's default, pebble/v2 options.go) and
+// keeps one freed memtable for reuse, each reserved in the cache, so the
+// memtables stay within the cache. Larger memtables let most record logs be written and
+// deleted inside one memtable, never flushed (store_log.go).
+// BenchmarkThroughput (stream), five runs each side by side: 16 MiB
+// memtables in a 64 MiB cache (the earlier default) gave 428k-478k
+// answers/s at 3.8-4.4 us CPU per answer; 64 MiB in 192 MiB 523k-567k at
+// 3.3-3.6 us; 48 MiB in 144 MiB was between them in a noisier set of
+// runs. BenchmarkMemory1MRecords: peak RSS 328 MiB at 64 MiB of cache,
+// 438 MiB at 144, 498 MiB at 192 (too close to the 512 MiB target).
+func defaultMemTableBytes(cacheBytes int64) int {
+	return int(min(max(cacheBytes/3, 1<<20), 64<<20))
 }

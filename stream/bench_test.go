@@ -159,12 +159,14 @@ func attainRate(b *testing.B, addr string, n, iter int, shutdown, batchAge, cpu 
 	*cpu = processCPU() - c0
 	*batchAge = time.Duration(rp.m.MaxBatchAge.Load())
 	t0 := time.Now()
+	s := st.Stats() // before the final synced checkpoint
 	rp.stop(b)
 	*shutdown = time.Since(t0)
 	if d := st.OutboxDepth(); d != 0 {
 		b.Fatalf("outbox holds %d entries after the final drain", d)
 	}
-	s := st.Stats()
+	b.Logf("attain: pebble wrote %.0f B/answer to the WAL, %.0f by flushes, %.0f by compactions",
+		float64(s.WALBytes)/float64(n), float64(s.FlushedBytes)/float64(n), float64(s.CompactedBytes)/float64(n))
 	b.Logf("attain: %d applied, %d duplicates, %d commits, %d published, cache hits %d misses %d",
 		rp.m.Applied.Load(), rp.m.Duplicates.Load(), rp.m.Commits.Load(),
 		rp.m.PublishedReached.Load()+rp.m.PublishedStuck.Load(), s.CacheHits, s.CacheMisses)
