@@ -26,7 +26,7 @@ func scanAnswer(src string, f *fields) (ok bool) {
 	}
 	for {
 		s.ws()
-		key, ok := s.str()
+		key, ok := s.key()
 		if !ok {
 			return false
 		}
@@ -137,6 +137,32 @@ func (s *scanner) eat(c byte) bool {
 func (s *scanner) end() bool {
 	s.ws()
 	return s.i == len(s.b)
+}
+
+// knownKeys are the field names of the native event, each with its
+// closing quote, by first byte.
+var knownKeys = [256][]string{
+	'i': {`id"`, `item"`},
+	'l': {`learner"`},
+	's': {`skills"`},
+	'c': {`correct"`},
+	'a': {`at"`},
+	'v': {`version"`},
+}
+
+// key reads an object key: one of the known field names without a scan
+// for escapes, any other key as str does.
+func (s *scanner) key() (string, bool) {
+	if s.i+1 < len(s.b) && s.b[s.i] == '"' {
+		rest := s.b[s.i+1:]
+		for _, k := range knownKeys[rest[0]] {
+			if strings.HasPrefix(rest, k) {
+				s.i += 1 + len(k)
+				return k[:len(k)-1], true
+			}
+		}
+	}
+	return s.str()
 }
 
 // str reads a string without escapes; control characters and invalid UTF-8
