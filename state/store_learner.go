@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"slices"
+	"strings"
 
 	"github.com/cockroachdb/pebble/v2"
 )
@@ -254,6 +255,9 @@ func (pt *Partition) internString(skill string) string {
 	if s, ok := pt.skillNames[skill]; ok {
 		return s
 	}
+	// A copy: the answer's strings may share the memory of the whole
+	// message (DecodeShared), which a record must not keep alive.
+	skill = strings.Clone(skill)
 	if len(pt.skillNames) < maxInterned {
 		pt.skillNames[skill] = skill
 	}

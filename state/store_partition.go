@@ -18,7 +18,8 @@ type ApplyResult struct {
 	Rederived int  // skills whose record was re-derived from history under a newer params version first
 	// PCorrect holds, per skill in a.Skills order, the prediction made
 	// before the answer (a skill named twice gets the same value twice; it
-	// is applied once).
+	// is applied once). It is the partition's buffer, valid until the
+	// partition's next Apply: copy it to keep it.
 	PCorrect []float64
 	Outputs  []Output // reached/stuck events staged in the outbox by this answer
 	// Replayed is true when offset was at or below the stored or staged
@@ -90,7 +91,8 @@ type Partition struct {
 	skillNames map[string]string // see intern
 
 	kbuf, vbuf, lkbuf, rkbuf []byte
-	dwin                     window // a delta window being written
+	pcbuf                    []float64 // ApplyResult.PCorrect
+	dwin                     window    // a delta window being written
 	work                     []skillWork
 
 	// cnt counts what the handle did since its counts were last added to
@@ -305,7 +307,7 @@ func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResu
 		return ApplyResult{Duplicate: true}, nil
 	}
 	at := a.At.UnixNano()
-	res := ApplyResult{Late: lv.win.hasAt && at < lv.win.lastAt, PCorrect: make([]float64, len(a.Skills))}
+	res := ApplyResult{Late: lv.win.hasAt && at < lv.win.lastAt, PCorrect: pt.pcorrect(len(a.Skills))}
 
 	pt.work = pt.work[:0]
 	for i, skill := range a.Skills {
@@ -388,6 +390,15 @@ func (pt *Partition) Apply(a Answer, offset int64, params *ParamFile) (ApplyResu
 	}
 	pt.cnt.rederived += int64(res.Rederived)
 	return res, nil
+}
+
+func (pt *Partition) pcorrect(n int) []float64 {
+	if cap(pt.pcbuf) < n {
+		pt.pcbuf = make([]float64, n)
+	}
+	pt.pcbuf = pt.pcbuf[:n]
+	clear(pt.pcbuf)
+	return pt.pcbuf
 }
 
 func dupSkill(prev []string, skill string) bool {

@@ -15,6 +15,12 @@ type Decoder interface {
 	Decode(b []byte) (state.Answer, error)
 }
 
+// sharedDecoder is a Decoder that can also decode without copying the
+// value (state.NativeDecoder.DecodeShared).
+type sharedDecoder interface {
+	DecodeShared(b []byte) (state.Answer, error)
+}
+
 // Reason codes: the first word of every dead letter's reason, so that a
 // consumer of the dead-letter topic can sort rejections without parsing
 // prose. The rest of the reason is the detail, for people.
@@ -42,7 +48,13 @@ func decodeMessage(dec Decoder, v []byte, maxBytes int) (state.Answer, *rejectio
 	if maxBytes > 0 && len(v) > maxBytes {
 		return state.Answer{}, &rejection{code: ReasonOversized, detail: fmt.Sprintf("the event is %d bytes, over consumer.max_event_bytes = %d", len(v), maxBytes)}
 	}
-	a, err := dec.Decode(v)
+	var a state.Answer
+	var err error
+	if sd, ok := dec.(sharedDecoder); ok {
+		a, err = sd.DecodeShared(v) // every message value has a buffer of its own
+	} else {
+		a, err = dec.Decode(v)
+	}
 	if err == nil {
 		return a, nil
 	}
