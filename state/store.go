@@ -9,6 +9,7 @@ import (
 	"strings"
 	"sync"
 	"sync/atomic"
+	"time"
 
 	"github.com/cockroachdb/pebble/v2"
 	"github.com/rs/zerolog"
@@ -137,6 +138,8 @@ type Store struct {
 
 	applied, duplicates, late, rederived, deadLetters, skipped, replayed atomic.Int64
 	commits, commitFailures, checkpoints, pinnedHits                     atomic.Int64
+
+	ckptInterval time.Duration // checkpointMinInterval; tests set 0
 }
 
 type partSlot struct {
@@ -189,6 +192,8 @@ func OpenStore(dir string, opt StoreOptions) (*Store, error) {
 		slots: make(map[int32]*partSlot),
 		parts: make(map[int32]struct{}),
 		cache: newShardedLRU[*learnerVal](opt.CacheRecords, opt.CacheLearners),
+
+		ckptInterval: checkpointMinInterval,
 	}
 	if err := s.checkSchema(dir); err != nil {
 		db.Close()

@@ -4,6 +4,7 @@ import (
 	"encoding/binary"
 	"errors"
 	"fmt"
+	"time"
 
 	"github.com/cockroachdb/pebble/v2"
 )
@@ -29,8 +30,8 @@ import (
 // before.
 //
 // Who materializes: a background checkpoint the partition's handle starts
-// every checkpointCommits commits or checkpointBytes of logs (one at a
-// time); the handle itself on a synced commit, or when the logs reach
+// every checkpointCommits commits (at most once per
+// checkpointMinInterval) or checkpointBytes of logs (one at a time); the handle itself on a synced commit, or when the logs reach
 // 4 × checkpointBytes while a background one is still running; Store.Partition
 // before the handle reads anything (what a crashed or released handle
 // left); the readers of committed state (Learner, History, ScanHistory) for
@@ -50,10 +51,16 @@ const (
 
 // Checkpoint thresholds (our choice: about a second of batches at the
 // default batch.interval of 100 ms, and a bound on the logs a reader or a
-// restart materializes).
+// restart materializes). A partition that has caught up with its input
+// commits more often than the interval (stream: each fetch that reaches
+// the log's end), so the count alone would checkpoint it more and more
+// often as its commits shrink: ten commits start a checkpoint only once
+// checkpointMinInterval has passed since the last one. The byte bound
+// applies at any time.
 const (
-	checkpointCommits = 10
-	checkpointBytes   = 8 << 20
+	checkpointCommits     = 10
+	checkpointBytes       = 8 << 20
+	checkpointMinInterval = time.Second
 )
 
 // logKey is the key of partition p's seq-th log.

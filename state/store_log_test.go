@@ -251,3 +251,41 @@ func TestLogOpsRoundTrip(t *testing.T) {
 		t.Fatalf("read back %d ops, wrote %d; first difference somewhere in\n got %v\nwant %v", len(got), len(want), got, want)
 	}
 }
+
+// TestCheckpointMinInterval: many small commits within the minimum
+// interval leave their logs for one later checkpoint instead of starting
+// one every checkpointCommits commits; once the interval has passed, the
+// next commit starts one, and it takes every log.
+func TestCheckpointMinInterval(t *testing.T) {
+	s := openTestStore(t, t.TempDir(), StoreOptions{})
+	defer s.Close()
+	s.ckptInterval = time.Hour
+	pt := mustPartition(t, s, 0)
+	pf := NewParamFile()
+	as := answers(5, 3*checkpointCommits+1, 4)
+	for i, a := range as[:3*checkpointCommits] {
+		if _, err := pt.Apply(a, int64(i), pf); err != nil {
+			t.Fatal(err)
+		}
+		mustCommit(t, pt, false)
+		waitBackground(t, s, 0) // each checkpoint that starts ends before the next commit
+	}
+	// The first commits may checkpoint: the handle has not checkpointed
+	// yet. After that, none within the hour.
+	if n := logKeys(t, s, 0); n < 2*checkpointCommits {
+		t.Fatalf("%d logs after %d commits within the interval, want at least %d (no checkpoint after the first)", n, 3*checkpointCommits, 2*checkpointCommits)
+	}
+	before := s.Stats().Checkpoints
+	s.ckptInterval = 0 // the interval has passed
+	if _, err := pt.Apply(as[len(as)-1], int64(len(as)-1), pf); err != nil {
+		t.Fatal(err)
+	}
+	mustCommit(t, pt, false)
+	waitBackground(t, s, 0)
+	if got := s.Stats().Checkpoints; got != before+1 {
+		t.Fatalf("checkpoints %d, want %d: the commit after the interval starts one", got, before+1)
+	}
+	if n := logKeys(t, s, 0); n != 0 {
+		t.Fatalf("%d logs after the checkpoint, want 0", n)
+	}
+}

@@ -82,9 +82,10 @@ type Partition struct {
 	// dropped (a failed commit): the logs are materialized before the next
 	// read.
 	unckpt    map[string]*learnerVal
-	logSeq    uint64 // the next log key's sequence
-	sinceCkpt int    // logs written since the last checkpoint
-	logBytes  int    // their size
+	logSeq    uint64    // the next log key's sequence
+	sinceCkpt int       // logs written since the last checkpoint
+	lastCkpt  time.Time // when the handle last started a checkpoint
+	logBytes  int       // their size
 	unsettled bool
 	logbuf    []byte
 
@@ -634,9 +635,10 @@ func (pt *Partition) Commit(sync bool) error {
 		if err := pt.checkpoint(sync); err != nil {
 			s.log.Error().Err(err).Int32("partition", pt.p).Msg("checkpointing the record log failed; the logs are kept and checkpointed later")
 		}
-	case !sl.bgRunning && (pt.sinceCkpt >= checkpointCommits || pt.logBytes >= checkpointBytes):
+	case !sl.bgRunning && (pt.sinceCkpt >= checkpointCommits && time.Since(pt.lastCkpt) >= s.ckptInterval || pt.logBytes >= checkpointBytes):
 		sl.bgRunning = true
 		pt.sinceCkpt, pt.logBytes = 0, 0
+		pt.lastCkpt = time.Now()
 		go s.backgroundCheckpoint(sl, pt.p, pt, pt.logSeq-1)
 	}
 	return nil
@@ -650,6 +652,7 @@ func (pt *Partition) checkpoint(sync bool) error {
 	}
 	pt.unpin(^uint64(0))
 	pt.sinceCkpt, pt.logBytes = 0, 0
+	pt.lastCkpt = time.Now()
 	return nil
 }
 

@@ -128,6 +128,9 @@ func openTestStore(t testing.TB, dir string, opt StoreOptions) *Store {
 	if err != nil {
 		t.Fatalf("OpenStore: %v", err)
 	}
+	// The tests commit fast and many times: without the minimum interval
+	// they see a background checkpoint every checkpointCommits commits.
+	s.ckptInterval = 0
 	return s
 }
 

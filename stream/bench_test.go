@@ -146,9 +146,18 @@ func attainRate(b *testing.B, addr string, n, iter int, shutdown, batchAge, cpu 
 	// Done is every answer in a committed batch and every output
 	// acknowledged by the broker (outbox empty): what a crash could no
 	// longer lose.
+	var allRead, allCommitted time.Time
+	var depthAtCommitted int64
 	for rp.m.Committed.Load() < int64(n) || st.OutboxDepth() != 0 {
 		if start.IsZero() && rp.m.Consumed.Load() > 0 {
 			start, c0 = time.Now(), processCPU()
+		}
+		if allRead.IsZero() && rp.m.Consumed.Load() >= int64(n) {
+			allRead = time.Now()
+		}
+		if allCommitted.IsZero() && rp.m.Committed.Load() >= int64(n) {
+			allCommitted = time.Now()
+			depthAtCommitted = st.OutboxDepth()
 		}
 		if time.Now().After(deadline) {
 			b.Fatalf("attain committed %d of %d in 5 minutes", rp.m.Committed.Load(), n)
@@ -157,6 +166,14 @@ func attainRate(b *testing.B, addr string, n, iter int, shutdown, batchAge, cpu 
 	}
 	el := time.Since(start)
 	*cpu = processCPU() - c0
+	if allRead.IsZero() {
+		allRead = time.Now()
+	}
+	if allCommitted.IsZero() {
+		allCommitted = time.Now()
+	}
+	b.Logf("attain: every answer read after %v, committed after %v (outbox depth then %d), outbox empty after %v",
+		allRead.Sub(start).Round(time.Millisecond), allCommitted.Sub(start).Round(time.Millisecond), depthAtCommitted, el.Round(time.Millisecond))
 	*batchAge = time.Duration(rp.m.MaxBatchAge.Load())
 	t0 := time.Now()
 	s := st.Stats() // before the final synced checkpoint

@@ -27,7 +27,8 @@ type ProcessorOptions struct {
 	MaxEventBytes int
 	// BatchInterval and BatchMaxAnswers bound a micro-batch: it is committed
 	// once BatchInterval has passed since its first message or once it
-	// holds BatchMaxAnswers messages, whichever comes first. Defaults
+	// holds BatchMaxAnswers messages, whichever comes first, and as soon
+	// as the partition has read to the end of its log. Defaults
 	// 100 ms and 10000 (ARCHITECTURE.md, Durability): under load the
 	// interval decides, and the count only caps a batch's memory when one
 	// partition receives more than 100,000 answers/s. (2000 made a busy
@@ -372,6 +373,16 @@ func (r *partitionRun) loop(stop context.Context) error {
 			}
 		}
 		r.fetch.recycle(c.msgs)
+		// Caught up with the end of the log as the broker last reported
+		// it, and nothing more in hand: commit now rather than at the
+		// batch's deadline, so that outputs go out without waiting for
+		// the interval. While the partition is behind, batches fill as
+		// before.
+		if r.staged > 0 && r.next >= r.hwm && len(r.fetch.out) == 0 {
+			if err := r.commit(false, time.Now()); err != nil {
+				return err
+			}
+		}
 	}
 }
 

@@ -305,3 +305,27 @@ func TestDrainFenced(t *testing.T) {
 		t.Errorf("%d messages on the topics, want %d", got, depth)
 	}
 }
+
+// TestCaughtUpCommit: a partition that has read to the end of its log
+// commits what it holds at once instead of at the batch's deadline (here
+// an hour away), and its outputs are published; while it is behind, it
+// batches (fewer commits than fetched chunks).
+func TestCaughtUpCommit(t *testing.T) {
+	b := startTestBroker(t, 1)
+	answers := cohort(6, 30, 5000)
+	produce(t, b.Addr(), tAnswers, answerMessages(answers[:4950]))
+	st := openTestStore(t, t.TempDir())
+	defer st.Close()
+	rp := startProcessor(t, b.Addr(), st, state.NewRegistry(nil), ProcessorOptions{BatchInterval: time.Hour, BatchMaxAnswers: 1 << 20})
+	defer rp.stop(t)
+	waitFor(t, 20*time.Second, "the first answers committed", func() bool { return rp.m.Committed.Load() == 4950 })
+	if c := rp.m.Commits.Load(); c >= 4950/chunkMessages {
+		t.Errorf("%d commits for 4950 answers read behind the log's end, want fewer than the %d chunks", c, 4950/chunkMessages)
+	}
+	produce(t, b.Addr(), tAnswers, answerMessages(answers[4950:]))
+	waitFor(t, 20*time.Second, "the later answers committed", func() bool { return rp.m.Committed.Load() == 5000 })
+	waitFor(t, 20*time.Second, "the outbox published", func() bool { return st.OutboxDepth() == 0 })
+	if rp.m.PublishedReached.Load()+rp.m.PublishedStuck.Load() == 0 {
+		t.Error("no output published: the test checks nothing about publishing")
+	}
+}
